@@ -6,3 +6,6 @@
 //! slices and reused by the server, the worker and the benchmarks alike.
 
 pub mod stats;
+
+pub mod checks;
+pub mod ids;

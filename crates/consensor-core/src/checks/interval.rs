@@ -1,0 +1,819 @@
+//! The decision of one interval for one area and quantity, exactly as API.md "How an interval is
+//! decided" defines it:
+//!
+//! 1. hard per-reading checks: `missing_value`, `missing_code`, `out_of_range`, `flat_line`;
+//! 2. the step test against the station's previous reading that passed steps 1 and 2;
+//! 3. a provisional consensus (median and scale of each station's median of the readings that passed
+//!    step 1) that clears a step-suspect reading close to it, or sets it aside as `step`;
+//! 4. one value per station: the median of its readings not set aside;
+//! 5. the cross-station test on those values (at least 3): |score| > limit → `far_from_consensus`;
+//! 6. the `Point` on the station values kept.
+//!
+//! The input holds each station's readings in time order, including its *history* before the
+//! interval (readings the step and flat-line tests look back on: give at least 60 minutes for the
+//! flat-line window, and preferably two or three hours so that the "previous accepted reading" of the
+//! step test is itself judged on enough history). History readings are judged by the same rules but
+//! produce no record; readings at or after the interval's end are ignored.
+//!
+//! [`IntervalScreen`] keeps its working buffers between calls, and [`IntervalOutcome`] can be reused,
+//! so screening interval after interval allocates nothing once the buffers have grown (the benchmark
+//! counts allocations to check it).
+
+use std::collections::VecDeque;
+
+use super::quantity::DEFAULT_MISSING_CODES;
+use super::quantity::{QuantitySpec, MINUTE_MS};
+use super::{Rule, SetAside};
+use crate::stats::circular::{circular_median, signed_difference, wrap_degrees};
+use crate::stats::median::median_range_in_place;
+use crate::stats::scale::{robust_scale_with, MAD_TO_SD};
+use crate::stats::{ci, huber_location, HUBER_K};
+
+/// One stored reading, in the canonical unit.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Reading {
+    /// The store's id for the reading (opaque here; copied into set-aside records).
+    pub id: u64,
+    pub observed_at_ms: i64,
+    /// The canonical value; `None` when the station sent `null`.
+    pub value: Option<f64>,
+    /// The value as sent, before unit conversion (`None` when the station sent `null`); the
+    /// missing-data codes are compared with it.
+    pub value_as_sent: Option<f64>,
+}
+
+/// One station's readings, sorted by `observed_at_ms` (history first, then the interval's).
+#[derive(Debug, Clone, Copy)]
+pub struct StationReadings<'a> {
+    /// The caller's handle for the station, copied into the results.
+    pub station: u32,
+    pub readings: &'a [Reading],
+}
+
+/// The configurable parts of the decision.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Rules {
+    /// Values that mean "no data", compared with the value as sent.
+    pub missing_codes: Vec<f64>,
+    /// The |score| above which a station value is far from the consensus (Iglewicz & Hoaglin 3.5).
+    pub far_limit: f64,
+    /// The flat-line window: readings with `observed_at` in (t − window, t].
+    pub flat_window_ms: i64,
+    /// The fewest readings a flat-line window must hold before it can judge.
+    pub flat_min_readings: usize,
+    /// The coverage of the median's confidence interval (0.95 for `ci95_*`).
+    pub ci_confidence: f64,
+}
+
+impl Default for Rules {
+    fn default() -> Self {
+        Rules {
+            missing_codes: DEFAULT_MISSING_CODES.to_vec(),
+            far_limit: crate::stats::MODIFIED_Z_LIMIT,
+            flat_window_ms: 60 * MINUTE_MS,
+            flat_min_readings: 6,
+            ci_confidence: 0.95,
+        }
+    }
+}
+
+/// One area's interval for one quantity.
+#[derive(Debug, Clone, Copy)]
+pub struct IntervalInput<'a> {
+    pub quantity: &'a QuantitySpec,
+    pub rules: &'a Rules,
+    /// The interval is `[start_ms, end_ms)`.
+    pub start_ms: i64,
+    pub end_ms: i64,
+    pub stations: &'a [StationReadings<'a>],
+}
+
+/// How much the interval could say.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Status {
+    /// No station value was kept.
+    NoData,
+    /// Fewer than 3 station values reached the cross-station test, so none was made.
+    FewStations,
+    Ok,
+}
+
+impl Status {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Status::NoData => "no_data",
+            Status::FewStations => "few_stations",
+            Status::Ok => "ok",
+        }
+    }
+}
+
+/// The consensus of one interval (API.md `Point`, without the storage fields).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Point {
+    pub median: Option<f64>,
+    pub median_low: Option<f64>,
+    pub median_high: Option<f64>,
+    pub mean: Option<f64>,
+    /// The mean over stations of each station's median of all its numeric readings, unchecked.
+    pub mean_all: Option<f64>,
+    pub mad: Option<f64>,
+    pub spread: Option<f64>,
+    pub ci95_low: Option<f64>,
+    pub ci95_high: Option<f64>,
+    pub huber: Option<f64>,
+    pub stations_used: u32,
+    pub stations_set_aside: u32,
+    pub status: Status,
+}
+
+impl Point {
+    fn empty() -> Self {
+        Point {
+            median: None,
+            median_low: None,
+            median_high: None,
+            mean: None,
+            mean_all: None,
+            mad: None,
+            spread: None,
+            ci95_low: None,
+            ci95_high: None,
+            huber: None,
+            stations_used: 0,
+            stations_set_aside: 0,
+            status: Status::NoData,
+        }
+    }
+}
+
+/// A station's value for the interval, as it reached the cross-station test.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct StationValue {
+    pub station: u32,
+    pub value: f64,
+    /// Whether the value went into the `Point`.
+    pub used: bool,
+    /// Its signed score in the cross-station test, when one was made.
+    pub score: Option<f64>,
+}
+
+/// Everything decided about one interval.
+#[derive(Debug, Clone, PartialEq)]
+pub struct IntervalOutcome {
+    pub point: Point,
+    /// Every reading of the interval set aside, grouped by station in input order, then by time.
+    pub set_aside: Vec<SetAside>,
+    /// Every station value of step 4, in input order.
+    pub station_values: Vec<StationValue>,
+}
+
+impl Default for IntervalOutcome {
+    fn default() -> Self {
+        IntervalOutcome {
+            point: Point::empty(),
+            set_aside: Vec::new(),
+            station_values: Vec::new(),
+        }
+    }
+}
+
+/// Decides one interval with fresh buffers. See [`IntervalScreen`] to decide many without allocating.
+pub fn screen_interval(input: &IntervalInput<'_>) -> IntervalOutcome {
+    let mut outcome = IntervalOutcome::default();
+    IntervalScreen::default().screen(input, &mut outcome);
+    outcome
+}
+
+/// Reusable working memory for deciding intervals.
+#[derive(Debug, Default)]
+pub struct IntervalScreen {
+    verdicts: Vec<Verdict>,
+    flat_window: SlidingWindow,
+    stations: Vec<StationWork>,
+    values: Vec<f64>,
+    scratch: Vec<f64>,
+}
+
+/// What the per-reading rules made of one reading.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Verdict {
+    /// At or after the interval's end: not looked at.
+    Ignored,
+    /// Caught by a rule of step 1.
+    Hard {
+        rule: Rule,
+        score: Option<f64>,
+        threshold: Option<f64>,
+        gap_ms: Option<i64>,
+        window_readings: Option<u32>,
+    },
+    /// Failed the step test; awaits the provisional consensus.
+    StepSuspect {
+        change: f64,
+        limit: f64,
+        gap_ms: i64,
+    },
+    /// Step-suspect, and the provisional consensus did not confirm it.
+    StepSetAside {
+        change: f64,
+        limit: f64,
+        gap_ms: i64,
+        median: Option<f64>,
+        scale: Option<f64>,
+    },
+    /// Passed every per-reading rule (or was a step-suspect the consensus cleared).
+    Passed,
+}
+
+/// Per-station bookkeeping for one interval.
+#[derive(Debug, Clone, Copy)]
+struct StationWork {
+    /// Index range of the station's readings inside `verdicts`.
+    first: usize,
+    end: usize,
+    /// The first index (in `verdicts`) inside the interval.
+    interval_first: usize,
+    value: Option<f64>,
+    score: Option<f64>,
+    far: bool,
+}
+
+/// The centre and scale of a cross-station comparison, in the quantity's geometry.
+#[derive(Debug, Clone, Copy)]
+struct Consensus {
+    median: f64,
+    scale: f64,
+}
+
+impl IntervalScreen {
+    /// Decides `input` into `outcome` (whose vectors are cleared and refilled).
+    ///
+    /// Panics if a station's readings are not sorted by time: the store returns them ordered, and a
+    /// misordered series would silently change which reading is "previous".
+    pub fn screen(&mut self, input: &IntervalInput<'_>, outcome: &mut IntervalOutcome) {
+        let spec = input.quantity;
+        outcome.set_aside.clear();
+        outcome.station_values.clear();
+        outcome.point = Point::empty();
+        self.verdicts.clear();
+        self.stations.clear();
+
+        // Steps 1 and 2, station by station, in time order.
+        for station in input.stations {
+            let first = self.verdicts.len();
+            self.judge_station_readings(input, station.readings);
+            let interval_first = first
+                + station
+                    .readings
+                    .partition_point(|r| r.observed_at_ms < input.start_ms);
+            self.stations.push(StationWork {
+                first,
+                end: self.verdicts.len(),
+                interval_first,
+                value: None,
+                score: None,
+                far: false,
+            });
+        }
+
+        // Step 3: the provisional consensus clears or sets aside the step-suspects.
+        self.values.clear();
+        for (work, station) in self.stations.iter().zip(input.stations) {
+            let candidates = interval_values(work, station, &self.verdicts, |v| {
+                matches!(v, Verdict::Passed | Verdict::StepSuspect { .. })
+            });
+            if let Some(value) = station_median(spec, candidates, &mut self.scratch) {
+                self.values.push(value);
+            }
+        }
+        let provisional = if self.values.len() >= 3 {
+            consensus(spec, &mut self.values, &mut self.scratch)
+        } else {
+            None
+        };
+        for verdict in &mut self.verdicts {
+            if let Verdict::StepSuspect {
+                change,
+                limit,
+                gap_ms,
+            } = *verdict
+            {
+                *verdict = Verdict::StepSetAside {
+                    change,
+                    limit,
+                    gap_ms,
+                    median: provisional.map(|c| c.median),
+                    scale: provisional.map(|c| c.scale),
+                };
+            }
+        }
+        if let Some(provisional) = provisional {
+            for (work, station) in self.stations.iter().zip(input.stations) {
+                for index in work.interval_first..work.end {
+                    let reading = &station.readings[index - work.first];
+                    if let (Verdict::StepSetAside { .. }, Some(value)) =
+                        (self.verdicts[index], reading.value)
+                    {
+                        let score = score(spec, &provisional, value);
+                        if score.abs() <= input.rules.far_limit {
+                            self.verdicts[index] = Verdict::Passed;
+                        }
+                    }
+                }
+            }
+        }
+
+        // Step 4: one value per station.
+        self.values.clear();
+        for (work, station) in self.stations.iter_mut().zip(input.stations) {
+            let kept = interval_values(work, station, &self.verdicts, |v| {
+                matches!(v, Verdict::Passed)
+            });
+            work.value = station_median(spec, kept, &mut self.scratch);
+            if let Some(value) = work.value {
+                self.values.push(value);
+            }
+        }
+
+        // Step 5: the cross-station test, when at least 3 station values reach it.
+        let tested = self.values.len() >= 3;
+        let cross = if tested {
+            consensus(spec, &mut self.values, &mut self.scratch)
+        } else {
+            None
+        };
+        if let Some(cross) = cross {
+            for work in &mut self.stations {
+                if let Some(value) = work.value {
+                    let score = score(spec, &cross, value);
+                    work.score = Some(score);
+                    work.far = score.abs() > input.rules.far_limit;
+                }
+            }
+        }
+
+        // Step 6: the Point on the station values kept.
+        self.values.clear();
+        for (work, station) in self.stations.iter().zip(input.stations) {
+            if let Some(value) = work.value {
+                outcome.station_values.push(StationValue {
+                    station: station.station,
+                    value,
+                    used: !work.far,
+                    score: work.score,
+                });
+                if !work.far {
+                    self.values.push(value);
+                }
+            }
+        }
+        let mut point = Point::empty();
+        self.fill_point(input, &mut point);
+        point.status = if self.values.is_empty() {
+            Status::NoData
+        } else if !tested {
+            Status::FewStations
+        } else {
+            Status::Ok
+        };
+        point.stations_used = self.values.len() as u32;
+        point.stations_set_aside = self
+            .stations
+            .iter()
+            .filter(|work| work.interval_first < work.end && (work.value.is_none() || work.far))
+            .count() as u32;
+        point.mean_all = self.naive_mean(input);
+        outcome.point = point;
+
+        // The records, station by station in time order.
+        for (work, station) in self.stations.iter().zip(input.stations) {
+            for index in work.interval_first..work.end {
+                let reading = &station.readings[index - work.first];
+                if let Some(record) = record_for(
+                    reading,
+                    station.station,
+                    self.verdicts[index],
+                    work,
+                    cross,
+                    input,
+                ) {
+                    outcome.set_aside.push(record);
+                }
+            }
+        }
+    }
+
+    /// Steps 1 and 2 for one station's readings (history included), appending one verdict each.
+    fn judge_station_readings(&mut self, input: &IntervalInput<'_>, readings: &[Reading]) {
+        let spec = input.quantity;
+        let rules = input.rules;
+        let first = self.verdicts.len();
+        self.flat_window.clear();
+        let mut previous_in_range: Option<i64> = None;
+        let mut previous_accepted: Option<(i64, f64)> = None;
+        let mut previous_time = i64::MIN;
+        for reading in readings {
+            let time = reading.observed_at_ms;
+            assert!(
+                time > previous_time,
+                "readings of one station must be sorted by time without repeats"
+            );
+            previous_time = time;
+            if time >= input.end_ms {
+                self.verdicts.push(Verdict::Ignored);
+                continue;
+            }
+            let verdict = match reading.value {
+                None => Verdict::Hard {
+                    rule: Rule::MissingValue,
+                    score: None,
+                    threshold: None,
+                    gap_ms: None,
+                    window_readings: None,
+                },
+                Some(value) => {
+                    let as_sent = reading.value_as_sent.unwrap_or(value);
+                    if rules.missing_codes.contains(&as_sent) {
+                        Verdict::Hard {
+                            rule: Rule::MissingCode,
+                            score: None,
+                            threshold: None,
+                            gap_ms: None,
+                            window_readings: None,
+                        }
+                    } else if let Some(verdict) =
+                        range_verdict(input, value, time, &mut previous_in_range)
+                    {
+                        verdict
+                    } else {
+                        self.flat_window.retire_up_to(time - rules.flat_window_ms);
+                        self.flat_window.push(time, value);
+                        flat_line_verdict(spec, rules, &self.flat_window)
+                            .or_else(|| step_verdict(spec, value, time, &mut previous_accepted))
+                            .unwrap_or(Verdict::Passed)
+                    }
+                }
+            };
+            self.verdicts.push(verdict);
+        }
+        debug_assert_eq!(self.verdicts.len() - first, readings.len());
+    }
+
+    fn fill_point(&mut self, input: &IntervalInput<'_>, point: &mut Point) {
+        let spec = input.quantity;
+        if self.values.is_empty() {
+            return;
+        }
+        // Circular values are unwrapped around their circular median so the linear statistics apply
+        // (see `stats::circular`); the results are wrapped back at the end.
+        if spec.circular {
+            let centre = circular_median(&self.values).expect("non-empty");
+            for value in &mut self.values {
+                *value = centre + signed_difference(*value, centre);
+            }
+        }
+        let wrap = |value: f64| {
+            if spec.circular {
+                wrap_degrees(value)
+            } else {
+                value
+            }
+        };
+        self.scratch.clear();
+        self.scratch.extend_from_slice(&self.values);
+        let range = median_range_in_place(&mut self.scratch).expect("non-empty");
+        let interval = ci::median_ci_in_place(&mut self.scratch, input.rules.ci_confidence);
+        for value in &mut self.scratch {
+            *value = (*value - range.mid).abs();
+        }
+        let mad = median_range_in_place(&mut self.scratch)
+            .expect("non-empty")
+            .mid;
+        let spread = MAD_TO_SD * mad;
+        point.median = Some(wrap(range.mid));
+        point.median_low = Some(wrap(range.low));
+        point.median_high = Some(wrap(range.high));
+        point.mean = crate::stats::mean(&self.values).map(wrap);
+        point.mad = Some(mad);
+        point.spread = Some(spread);
+        point.ci95_low = interval.map(|(low, _)| wrap(low));
+        point.ci95_high = interval.map(|(_, high)| wrap(high));
+        point.huber = huber_location(&self.values, range.mid, spread, HUBER_K).map(wrap);
+    }
+
+    /// `mean_all`: the mean over stations of the median of each station's numeric readings in the
+    /// interval, with no check at all.
+    fn naive_mean(&mut self, input: &IntervalInput<'_>) -> Option<f64> {
+        let spec = input.quantity;
+        self.values.clear();
+        for (work, station) in self.stations.iter().zip(input.stations) {
+            let numeric = station.readings[work.interval_first - work.first..work.end - work.first]
+                .iter()
+                .filter_map(|r| r.value);
+            if let Some(value) = station_median(spec, numeric, &mut self.scratch) {
+                self.values.push(value);
+            }
+        }
+        if spec.circular && !self.values.is_empty() {
+            let centre = circular_median(&self.values).expect("non-empty");
+            let total: f64 = self
+                .values
+                .iter()
+                .map(|&v| signed_difference(v, centre))
+                .sum();
+            return Some(wrap_degrees(centre + total / self.values.len() as f64));
+        }
+        crate::stats::mean(&self.values)
+    }
+}
+
+/// The values of a station's interval readings whose verdict satisfies `keep`.
+fn interval_values<'a>(
+    work: &StationWork,
+    station: &'a StationReadings<'a>,
+    verdicts: &'a [Verdict],
+    keep: impl Fn(&Verdict) -> bool + 'a,
+) -> impl Iterator<Item = f64> + 'a {
+    let range = work.interval_first..work.end;
+    let offset = work.first;
+    range.filter_map(move |index| {
+        if keep(&verdicts[index]) {
+            station.readings[index - offset].value
+        } else {
+            None
+        }
+    })
+}
+
+/// A station's value: the median of `values` (the circular median for directions).
+fn station_median(
+    spec: &QuantitySpec,
+    values: impl Iterator<Item = f64>,
+    scratch: &mut Vec<f64>,
+) -> Option<f64> {
+    scratch.clear();
+    scratch.extend(values);
+    if spec.circular {
+        circular_median(scratch)
+    } else {
+        median_range_in_place(scratch).map(|range| range.mid)
+    }
+}
+
+/// The median and floored scale of station values, in the quantity's geometry. Circular values are
+/// unwrapped in place around their circular median first.
+fn consensus(spec: &QuantitySpec, values: &mut [f64], scratch: &mut Vec<f64>) -> Option<Consensus> {
+    if spec.circular {
+        let centre = circular_median(values)?;
+        for value in values.iter_mut() {
+            *value = centre + signed_difference(*value, centre);
+        }
+    }
+    let robust = robust_scale_with(values, spec.min_spread, scratch)?;
+    Some(Consensus {
+        median: if spec.circular {
+            wrap_degrees(robust.median)
+        } else {
+            robust.median
+        },
+        scale: robust.scale,
+    })
+}
+
+/// The signed score of `value` against a consensus.
+fn score(spec: &QuantitySpec, consensus: &Consensus, value: f64) -> f64 {
+    let difference = if spec.circular {
+        signed_difference(value, consensus.median)
+    } else {
+        value - consensus.median
+    };
+    difference / consensus.scale
+}
+
+/// The `out_of_range` verdict, or `None` when the value is within range (and, for a per-minute
+/// quantity, the time becomes the station's previous in-range reading).
+fn range_verdict(
+    input: &IntervalInput<'_>,
+    value: f64,
+    time: i64,
+    previous_in_range: &mut Option<i64>,
+) -> Option<Verdict> {
+    let spec = input.quantity;
+    let (maximum, gap_ms) = if spec.range_per_minute {
+        let gap =
+            previous_in_range.map_or(input.end_ms - input.start_ms, |previous| time - previous);
+        (spec.range_max * gap as f64 / MINUTE_MS as f64, Some(gap))
+    } else {
+        (spec.range_max, None)
+    };
+    let threshold = if value < spec.range_min {
+        spec.range_min
+    } else if value > maximum || value.is_nan() {
+        maximum
+    } else {
+        *previous_in_range = Some(time);
+        return None;
+    };
+    Some(Verdict::Hard {
+        rule: Rule::OutOfRange,
+        score: Some(value),
+        threshold: Some(threshold),
+        gap_ms,
+        window_readings: None,
+    })
+}
+
+/// The readings of one station that passed the first three rules within the flat-line window, with
+/// their running minimum and maximum kept in monotonic queues, so that each reading costs O(1)
+/// amortised instead of a scan of the whole window.
+#[derive(Debug, Default)]
+struct SlidingWindow {
+    members: VecDeque<(i64, f64)>,
+    /// Decreasing values: the front is the window's maximum.
+    maxima: VecDeque<(i64, f64)>,
+    /// Increasing values: the front is the window's minimum.
+    minima: VecDeque<(i64, f64)>,
+}
+
+impl SlidingWindow {
+    fn clear(&mut self) {
+        self.members.clear();
+        self.maxima.clear();
+        self.minima.clear();
+    }
+
+    /// Drops every reading observed at or before `cutoff` (the window is (t − 60 min, t]).
+    fn retire_up_to(&mut self, cutoff: i64) {
+        for queue in [&mut self.members, &mut self.maxima, &mut self.minima] {
+            while queue.front().is_some_and(|&(time, _)| time <= cutoff) {
+                queue.pop_front();
+            }
+        }
+    }
+
+    fn push(&mut self, time: i64, value: f64) {
+        self.members.push_back((time, value));
+        while self.maxima.back().is_some_and(|&(_, v)| v <= value) {
+            self.maxima.pop_back();
+        }
+        self.maxima.push_back((time, value));
+        while self.minima.back().is_some_and(|&(_, v)| v >= value) {
+            self.minima.pop_back();
+        }
+        self.minima.push_back((time, value));
+    }
+
+    fn len(&self) -> usize {
+        self.members.len()
+    }
+
+    /// The lowest and highest value in the window. Directions are unwrapped around the window's
+    /// first reading (a scan, since the monotonic queues do not apply on a circle).
+    fn extremes(&self, circular: bool) -> (f64, f64) {
+        if circular {
+            let first = self.members.front().map_or(0.0, |&(_, v)| v);
+            self.members.iter().fold(
+                (f64::INFINITY, f64::NEG_INFINITY),
+                |(low, high), &(_, v)| {
+                    let on_line = first + signed_difference(v, first);
+                    (low.min(on_line), high.max(on_line))
+                },
+            )
+        } else {
+            let low = self.minima.front().map_or(f64::INFINITY, |&(_, v)| v);
+            let high = self.maxima.front().map_or(f64::NEG_INFINITY, |&(_, v)| v);
+            (low, high)
+        }
+    }
+}
+
+/// The `flat_line` verdict for the newest reading of `window`.
+fn flat_line_verdict(
+    spec: &QuantitySpec,
+    rules: &Rules,
+    window: &SlidingWindow,
+) -> Option<Verdict> {
+    let minimum_variation = spec.flat_line_min_variation?;
+    if window.len() < rules.flat_min_readings {
+        return None;
+    }
+    let (low, high) = window.extremes(spec.circular);
+    let variation = high - low;
+    if variation >= minimum_variation - 1e-9 {
+        return None;
+    }
+    // A window sitting on one end of the range is a legitimate steady state (calm wind, saturated
+    // air, darkness), not a stuck sensor: every reading within the minimum variation of that end.
+    // Directions have no ends.
+    if !spec.circular
+        && (high <= spec.range_min + minimum_variation || low >= spec.range_max - minimum_variation)
+    {
+        return None;
+    }
+    Some(Verdict::Hard {
+        rule: Rule::FlatLine,
+        score: Some(variation),
+        threshold: Some(minimum_variation),
+        gap_ms: None,
+        window_readings: Some(window.len() as u32),
+    })
+}
+
+/// The step test against the previous reading that passed steps 1 and 2; a reading that passes
+/// becomes the new previous one.
+fn step_verdict(
+    spec: &QuantitySpec,
+    value: f64,
+    time: i64,
+    previous_accepted: &mut Option<(i64, f64)>,
+) -> Option<Verdict> {
+    if let (Some(step), Some((previous_time, previous_value))) = (spec.step, *previous_accepted) {
+        let gap_ms = time - previous_time;
+        if let Some(limit) = step.limit_for_gap(gap_ms) {
+            let change = if spec.circular {
+                signed_difference(value, previous_value).abs()
+            } else {
+                (value - previous_value).abs()
+            };
+            if change > limit {
+                return Some(Verdict::StepSuspect {
+                    change,
+                    limit,
+                    gap_ms,
+                });
+            }
+        }
+    }
+    *previous_accepted = Some((time, value));
+    None
+}
+
+/// The set-aside record of one interval reading, if it was set aside.
+fn record_for(
+    reading: &Reading,
+    station: u32,
+    verdict: Verdict,
+    work: &StationWork,
+    cross: Option<Consensus>,
+    input: &IntervalInput<'_>,
+) -> Option<SetAside> {
+    let mut record = SetAside {
+        reading_id: reading.id,
+        station,
+        observed_at_ms: reading.observed_at_ms,
+        value: reading.value,
+        value_as_sent: reading.value_as_sent,
+        rule: Rule::FarFromConsensus,
+        score: None,
+        threshold: None,
+        consensus_median: None,
+        consensus_spread: None,
+        gap_ms: None,
+        window_readings: None,
+        station_value: None,
+    };
+    match verdict {
+        Verdict::Ignored | Verdict::StepSuspect { .. } => return None,
+        Verdict::Hard {
+            rule,
+            score,
+            threshold,
+            gap_ms,
+            window_readings,
+        } => {
+            record.rule = rule;
+            record.score = score;
+            record.threshold = threshold;
+            record.gap_ms = gap_ms;
+            record.window_readings = window_readings;
+        }
+        Verdict::StepSetAside {
+            change,
+            limit,
+            gap_ms,
+            median,
+            scale,
+        } => {
+            record.rule = Rule::Step;
+            record.score = Some(change);
+            record.threshold = Some(limit);
+            record.gap_ms = Some(gap_ms);
+            record.consensus_median = median;
+            record.consensus_spread = scale;
+        }
+        Verdict::Passed => {
+            if !work.far {
+                return None;
+            }
+            let cross = cross.expect("a far station implies a cross-station test");
+            record.rule = Rule::FarFromConsensus;
+            record.score = work.score;
+            record.threshold = Some(input.rules.far_limit);
+            record.consensus_median = Some(cross.median);
+            record.consensus_spread = Some(cross.scale);
+            record.station_value = work.value;
+        }
+    }
+    Some(record)
+}
