@@ -1,0 +1,338 @@
+//! The backend-neutral part of storing a batch: deciding, for each reading, whether it is new, a
+//! duplicate or a revision, and which pending buckets it touches. The backends only fetch the
+//! current values and write the rows this module plans.
+
+use std::collections::{BTreeSet, HashMap};
+use std::future::Future;
+
+use sqlx::Row;
+
+use crate::{BatchOutcome, NewReading, StoreError};
+
+/// The integer identity of a reading: (observed_at_ms, station_id, quantity_id), in the order of the
+/// unique index.
+pub(crate) type KeyIds = (i64, i64, i64);
+
+/// The current (highest) revision stored for a key, with the fields that decide duplicates.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct CurrentValue {
+    pub revision: i64,
+    pub value: Option<f64>,
+    pub value_as_sent: Option<f64>,
+    pub unit_as_sent: Option<String>,
+}
+
+/// A reading whose station and quantity have been resolved to ids.
+pub(crate) struct ResolvedReading<'a> {
+    pub reading: &'a NewReading,
+    pub station_id: i64,
+    pub area_id: i64,
+    pub interval_ms: i64,
+    pub quantity_id: i64,
+}
+
+impl ResolvedReading<'_> {
+    pub fn key(&self) -> KeyIds {
+        (
+            self.reading.observed_at_ms,
+            self.station_id,
+            self.quantity_id,
+        )
+    }
+}
+
+/// One row to append to `readings`.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct RowToInsert {
+    pub observed_at_ms: i64,
+    pub station_id: i64,
+    pub quantity_id: i64,
+    pub revision: i64,
+    pub value: Option<f64>,
+    pub value_as_sent: Option<f64>,
+    pub unit_as_sent: Option<String>,
+}
+
+/// What a batch will write, computed before any write happens.
+#[derive(Debug, Default, PartialEq)]
+pub(crate) struct BatchPlan {
+    pub rows: Vec<RowToInsert>,
+    /// Distinct (area_id, quantity_id, bucket_start_ms), sorted so that concurrent batches lock
+    /// pending-bucket rows in the same order and cannot deadlock each other.
+    pub buckets: Vec<KeyIds>,
+    pub outcome: BatchOutcome,
+}
+
+/// Classifies every reading of a batch against the current values already stored (`current`, keyed
+/// by [`KeyIds`]) and against the readings before it in the same batch, so that a key repeated
+/// within one batch is treated exactly as if it had arrived in two batches.
+pub(crate) fn plan_batch(
+    readings: &[ResolvedReading<'_>],
+    mut current: HashMap<KeyIds, CurrentValue>,
+) -> BatchPlan {
+    let mut plan = BatchPlan::default();
+    let mut buckets = BTreeSet::new();
+    for resolved in readings {
+        let reading = resolved.reading;
+        let key = resolved.key();
+        let revision = match current.get(&key) {
+            Some(stored) if same_reading(stored, reading) => {
+                plan.outcome.duplicates += 1;
+                continue;
+            }
+            Some(stored) => {
+                plan.outcome.revised += 1;
+                stored.revision + 1
+            }
+            None => 0,
+        };
+        plan.outcome.accepted += 1;
+        plan.rows.push(RowToInsert {
+            observed_at_ms: reading.observed_at_ms,
+            station_id: resolved.station_id,
+            quantity_id: resolved.quantity_id,
+            revision,
+            value: reading.value,
+            value_as_sent: reading.value_as_sent,
+            unit_as_sent: reading.unit_as_sent.clone(),
+        });
+        buckets.insert((
+            resolved.area_id,
+            resolved.quantity_id,
+            bucket_start_ms(reading.observed_at_ms, resolved.interval_ms),
+        ));
+        current.insert(
+            key,
+            CurrentValue {
+                revision,
+                value: reading.value,
+                value_as_sent: reading.value_as_sent,
+                unit_as_sent: reading.unit_as_sent.clone(),
+            },
+        );
+    }
+    plan.buckets = buckets.into_iter().collect();
+    plan
+}
+
+/// The start of the epoch-aligned interval containing `observed_at_ms`. Euclidean division makes
+/// times before 1970 fall into the interval that starts at or before them, as for later times.
+pub fn bucket_start_ms(observed_at_ms: i64, interval_ms: i64) -> i64 {
+    observed_at_ms.div_euclid(interval_ms) * interval_ms
+}
+
+/// A reading is a duplicate of the stored current value when everything the station sent and what
+/// it was converted to are the same. Numbers compare with `==` rather than bit for bit because
+/// SQLite stores a whole-number REAL as an integer and so reads -0.0 back as 0.0; NaN (refused at
+/// the edge anyway) is taken as equal to NaN so that resending it is not an endless revision.
+fn same_reading(stored: &CurrentValue, reading: &NewReading) -> bool {
+    same_number(stored.value, reading.value)
+        && same_number(stored.value_as_sent, reading.value_as_sent)
+        && stored.unit_as_sent == reading.unit_as_sent
+}
+
+fn same_number(left: Option<f64>, right: Option<f64>) -> bool {
+    match (left, right) {
+        (None, None) => true,
+        (Some(a), Some(b)) => a == b || (a.is_nan() && b.is_nan()),
+        _ => false,
+    }
+}
+
+/// Why one attempt at storing a batch failed: a driver error (which may be worth retrying), or a
+/// refusal that no retry can change (an unknown station, say).
+pub(crate) enum AttemptError {
+    Sql(sqlx::Error),
+    Refused(StoreError),
+}
+
+impl From<sqlx::Error> for AttemptError {
+    fn from(error: sqlx::Error) -> Self {
+        AttemptError::Sql(error)
+    }
+}
+
+/// How many times a batch is attempted when concurrent writers collide. A collision means another
+/// batch committed the same new key first; the next attempt sees its row and classifies against it.
+const BATCH_ATTEMPTS: usize = 4;
+
+/// Runs one batch transaction, again when it failed for a reason another attempt can cure.
+pub(crate) async fn with_retries<F, Fut>(mut attempt: F) -> Result<BatchOutcome, StoreError>
+where
+    F: FnMut() -> Fut,
+    Fut: Future<Output = Result<BatchOutcome, AttemptError>>,
+{
+    let mut attempts_left = BATCH_ATTEMPTS;
+    loop {
+        attempts_left -= 1;
+        match attempt().await {
+            Ok(outcome) => return Ok(outcome),
+            Err(AttemptError::Refused(error)) => return Err(error),
+            Err(AttemptError::Sql(error))
+                if attempts_left > 0 && crate::error::is_retryable(&error) => {}
+            Err(AttemptError::Sql(error)) => return Err(error.into()),
+        }
+    }
+}
+
+/// Returns the unknown keys of `wanted` (sorted, deduplicated) given what a lookup `found`.
+pub(crate) fn missing_keys<'a, V>(
+    wanted: impl IntoIterator<Item = &'a String>,
+    found: &HashMap<String, V>,
+) -> Vec<String> {
+    let missing: BTreeSet<&String> = wanted
+        .into_iter()
+        .filter(|key| !found.contains_key(*key))
+        .collect();
+    missing.into_iter().cloned().collect()
+}
+
+/// Distinct values in first-seen-independent (sorted) order, so that rows are locked in a fixed
+/// order by concurrent transactions.
+pub(crate) fn distinct_sorted<'a>(keys: impl IntoIterator<Item = &'a String>) -> Vec<String> {
+    keys.into_iter()
+        .collect::<BTreeSet<_>>()
+        .into_iter()
+        .cloned()
+        .collect()
+}
+
+/// Joins `batch_keys` to the readings and keeps each key's highest revision. Shared by both
+/// backends, which differ only in how they build `batch_keys`.
+pub(crate) const CURRENT_VALUES_SELECT: &str =
+    "SELECT r.observed_at_ms, r.station_id, r.quantity_id, r.revision, r.value, \
+     r.value_as_sent, r.unit_as_sent \
+     FROM batch_keys k JOIN readings r ON r.observed_at_ms = k.observed_at_ms \
+     AND r.station_id = k.station_id AND r.quantity_id = k.quantity_id \
+     WHERE NOT EXISTS (SELECT 1 FROM readings newer \
+     WHERE newer.observed_at_ms = r.observed_at_ms AND newer.station_id = r.station_id \
+     AND newer.quantity_id = r.quantity_id AND newer.revision > r.revision)";
+
+pub(crate) fn insert_current<R: Row>(
+    current: &mut HashMap<KeyIds, CurrentValue>,
+    row: &R,
+) -> Result<(), sqlx::Error>
+where
+    usize: sqlx::ColumnIndex<R>,
+    i64: sqlx::Type<R::Database> + for<'r> sqlx::Decode<'r, R::Database>,
+    f64: sqlx::Type<R::Database> + for<'r> sqlx::Decode<'r, R::Database>,
+    String: sqlx::Type<R::Database> + for<'r> sqlx::Decode<'r, R::Database>,
+{
+    let key: KeyIds = (row.try_get(0)?, row.try_get(1)?, row.try_get(2)?);
+    let candidate = CurrentValue {
+        revision: row.try_get(3)?,
+        value: row.try_get(4)?,
+        value_as_sent: row.try_get(5)?,
+        unit_as_sent: row.try_get(6)?,
+    };
+    // The query already keeps only the highest revision; taking the maximum here as well keeps the
+    // result right even if a key appears twice in the joined set.
+    match current.get(&key) {
+        Some(existing) if existing.revision >= candidate.revision => {}
+        _ => {
+            current.insert(key, candidate);
+        }
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn reading(value: Option<f64>, unit: Option<&str>) -> NewReading {
+        NewReading {
+            station: "ST-1".to_owned(),
+            quantity: "air_temperature".to_owned(),
+            observed_at_ms: 600_000,
+            value,
+            value_as_sent: value,
+            unit_as_sent: unit.map(str::to_owned),
+        }
+    }
+
+    fn resolved(reading: &NewReading) -> ResolvedReading<'_> {
+        ResolvedReading {
+            reading,
+            station_id: 7,
+            area_id: 3,
+            interval_ms: 600_000,
+            quantity_id: 2,
+        }
+    }
+
+    #[test]
+    fn repeated_key_within_one_batch_is_duplicate_then_revision() {
+        // Three readings of one key: the second repeats the first exactly, the third changes it, so
+        // the plan stores revision 0 and revision 1 and counts one duplicate.
+        let first = reading(Some(13.9), Some("Cel"));
+        let same = reading(Some(13.9), Some("Cel"));
+        let changed = reading(Some(14.2), Some("Cel"));
+        let batch = [resolved(&first), resolved(&same), resolved(&changed)];
+        let plan = plan_batch(&batch, HashMap::new());
+        assert_eq!(
+            plan.outcome,
+            BatchOutcome {
+                accepted: 2,
+                duplicates: 1,
+                revised: 1
+            }
+        );
+        let revisions: Vec<i64> = plan.rows.iter().map(|row| row.revision).collect();
+        assert_eq!(revisions, vec![0, 1]);
+        // 600 000 ms is exactly one 10-minute interval after the epoch, so it starts its bucket.
+        assert_eq!(plan.buckets, vec![(3, 2, 600_000)]);
+    }
+
+    #[test]
+    fn unit_and_null_decide_duplicates() {
+        let stored = CurrentValue {
+            revision: 4,
+            value: None,
+            value_as_sent: None,
+            unit_as_sent: None,
+        };
+        // null == null with no unit on either side: nothing changed.
+        assert!(same_reading(&stored, &reading(None, None)));
+        // The same (absent) value with a unit now given is a change of what was sent.
+        assert!(!same_reading(&stored, &reading(None, Some("Cel"))));
+        // A value where there was none is a change.
+        assert!(!same_reading(&stored, &reading(Some(0.0), None)));
+        // -0.0 == 0.0, because SQLite cannot keep the sign of a whole-number REAL.
+        let zero = CurrentValue {
+            value: Some(0.0),
+            value_as_sent: Some(0.0),
+            ..stored
+        };
+        assert!(same_reading(&zero, &reading(Some(-0.0), None)));
+    }
+
+    #[test]
+    fn revision_continues_from_stored_current_value() {
+        // The stored current revision is 4, so a changed value becomes revision 5.
+        let changed = reading(Some(1.5), None);
+        let mut current = HashMap::new();
+        current.insert(
+            (600_000, 7, 2),
+            CurrentValue {
+                revision: 4,
+                value: Some(1.0),
+                value_as_sent: Some(1.0),
+                unit_as_sent: None,
+            },
+        );
+        let plan = plan_batch(&[resolved(&changed)], current);
+        assert_eq!(plan.rows[0].revision, 5);
+        assert_eq!(plan.outcome.revised, 1);
+    }
+
+    #[test]
+    fn bucket_starts_align_to_the_epoch() {
+        // Hand-computed: 10-minute buckets are multiples of 600 000 ms; a time one millisecond
+        // before the epoch belongs to the bucket that starts 600 000 ms before it.
+        assert_eq!(bucket_start_ms(0, 600_000), 0);
+        assert_eq!(bucket_start_ms(599_999, 600_000), 0);
+        assert_eq!(bucket_start_ms(600_000, 600_000), 600_000);
+        assert_eq!(bucket_start_ms(-1, 600_000), -600_000);
+    }
+}

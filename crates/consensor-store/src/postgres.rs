@@ -1,0 +1,314 @@
+//! The PostgreSQL implementation, chosen by a `postgres://` or `postgresql://` URL.
+//!
+//! Batches travel as arrays: one `UNNEST` per statement carries every key or row of the batch, so a
+//! batch of any size costs the same handful of round trips and never meets a parameter limit.
+
+use std::collections::HashMap;
+use std::str::FromStr;
+
+use sqlx::postgres::{PgConnectOptions, PgPool, PgPoolOptions};
+use sqlx::{Postgres, Row, Transaction};
+
+use crate::batch::{
+    distinct_sorted, insert_current, missing_keys, plan_batch, with_retries, AttemptError,
+    CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
+};
+use crate::{
+    Area, BatchOutcome, NewArea, NewReading, NewStation, NewToken, ReadingKey, Station, StationRef,
+    Store, StoreError, StoreOptions, StoredReading, Token, Upserted,
+};
+
+static MIGRATOR: sqlx::migrate::Migrator = sqlx::migrate!("../../migrations/postgres");
+
+crate::sql::shared_queries!(sqlx::Postgres, sqlx::PgConnection);
+
+/// A store backed by a PostgreSQL database.
+#[derive(Debug, Clone)]
+pub struct PostgresStore {
+    pool: PgPool,
+}
+
+impl PostgresStore {
+    /// Connects to the database at `url` and applies pending migrations (sqlx holds an advisory
+    /// lock while migrating, so several replicas starting at once do not collide).
+    pub async fn connect(url: &str, options: &StoreOptions) -> Result<Self, StoreError> {
+        let connect_options = PgConnectOptions::from_str(url)?;
+        let pool = PgPoolOptions::new()
+            .max_connections(options.max_connections)
+            .acquire_timeout(options.acquire_timeout)
+            .connect_with(connect_options)
+            .await?;
+        MIGRATOR.run(&pool).await?;
+        Ok(PostgresStore { pool })
+    }
+
+    /// The underlying pool, for tests and the benchmark harness that need raw SQL. Application code
+    /// uses [`Store`].
+    pub fn pool(&self) -> &PgPool {
+        &self.pool
+    }
+
+    async fn try_insert_batch(
+        &self,
+        readings: &[NewReading],
+        now_ms: i64,
+    ) -> Result<BatchOutcome, AttemptError> {
+        let mut tx = self.pool.begin().await?;
+
+        let station_keys = distinct_sorted(readings.iter().map(|reading| &reading.station));
+        let stations = lookup_stations(&mut tx, &station_keys).await?;
+        let unknown = missing_keys(&station_keys, &stations);
+        if !unknown.is_empty() {
+            return Err(AttemptError::Refused(StoreError::NotFound(format!(
+                "unknown stations: {}",
+                unknown.join(", ")
+            ))));
+        }
+        let quantity_keys = distinct_sorted(readings.iter().map(|reading| &reading.quantity));
+        let quantities = ensure_quantities(&mut tx, &quantity_keys).await?;
+
+        let resolved: Vec<ResolvedReading<'_>> = readings
+            .iter()
+            .map(|reading| {
+                let station = stations[&reading.station];
+                ResolvedReading {
+                    reading,
+                    station_id: station.station_id,
+                    area_id: station.area_id,
+                    interval_ms: station.interval_ms,
+                    quantity_id: quantities[&reading.quantity],
+                }
+            })
+            .collect();
+        let mut keys: Vec<KeyIds> = resolved.iter().map(ResolvedReading::key).collect();
+        keys.sort_unstable();
+        keys.dedup();
+        let current = current_values(&mut tx, &keys).await?;
+        let plan = plan_batch(&resolved, current);
+
+        if !plan.rows.is_empty() {
+            let rows = &plan.rows;
+            sqlx::query(
+                "INSERT INTO readings (observed_at_ms, station_id, quantity_id, revision, value, \
+                 value_as_sent, unit_as_sent, received_at_ms) \
+                 SELECT k.observed_at_ms, k.station_id, k.quantity_id, k.revision, k.value, \
+                 k.value_as_sent, k.unit_as_sent, $8 \
+                 FROM UNNEST($1::bigint[], $2::bigint[], $3::bigint[], $4::bigint[], \
+                 $5::float8[], $6::float8[], $7::text[]) \
+                 AS k(observed_at_ms, station_id, quantity_id, revision, value, value_as_sent, \
+                 unit_as_sent)",
+            )
+            .bind(
+                rows.iter()
+                    .map(|row| row.observed_at_ms)
+                    .collect::<Vec<_>>(),
+            )
+            .bind(rows.iter().map(|row| row.station_id).collect::<Vec<_>>())
+            .bind(rows.iter().map(|row| row.quantity_id).collect::<Vec<_>>())
+            .bind(rows.iter().map(|row| row.revision).collect::<Vec<_>>())
+            .bind(rows.iter().map(|row| row.value).collect::<Vec<_>>())
+            .bind(rows.iter().map(|row| row.value_as_sent).collect::<Vec<_>>())
+            .bind(
+                rows.iter()
+                    .map(|row| row.unit_as_sent.clone())
+                    .collect::<Vec<_>>(),
+            )
+            .bind(now_ms)
+            .execute(&mut *tx)
+            .await?;
+        }
+
+        if !plan.buckets.is_empty() {
+            let buckets = &plan.buckets;
+            sqlx::query(
+                "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, marked_at_ms) \
+                 SELECT k.area_id, k.quantity_id, k.bucket_start_ms, $4 \
+                 FROM UNNEST($1::bigint[], $2::bigint[], $3::bigint[]) \
+                 AS k(area_id, quantity_id, bucket_start_ms) \
+                 ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
+                 marked_at_ms = excluded.marked_at_ms, \
+                 mark_count = pending_buckets.mark_count + 1",
+            )
+            .bind(buckets.iter().map(|bucket| bucket.0).collect::<Vec<_>>())
+            .bind(buckets.iter().map(|bucket| bucket.1).collect::<Vec<_>>())
+            .bind(buckets.iter().map(|bucket| bucket.2).collect::<Vec<_>>())
+            .bind(now_ms)
+            .execute(&mut *tx)
+            .await?;
+        }
+
+        tx.commit().await?;
+        Ok(plan.outcome)
+    }
+}
+
+async fn lookup_stations(
+    tx: &mut Transaction<'static, Postgres>,
+    keys: &[String],
+) -> Result<HashMap<String, StationRef>, sqlx::Error> {
+    let rows = sqlx::query(
+        "SELECT s.key, s.id, s.area_id, a.interval_ms FROM stations s \
+         JOIN areas a ON a.id = s.area_id WHERE s.key = ANY($1)",
+    )
+    .bind(keys)
+    .fetch_all(&mut **tx)
+    .await?;
+    let mut found = HashMap::with_capacity(rows.len());
+    for row in rows {
+        found.insert(
+            row.try_get::<String, _>(0)?,
+            StationRef {
+                station_id: row.try_get(1)?,
+                area_id: row.try_get(2)?,
+                interval_ms: row.try_get(3)?,
+            },
+        );
+    }
+    Ok(found)
+}
+
+/// Returns the ids of the given quantity keys, adding the keys that have none yet. The keys arrive
+/// sorted, so concurrent batches adding the same new keys lock them in the same order.
+async fn ensure_quantities(
+    tx: &mut Transaction<'static, Postgres>,
+    keys: &[String],
+) -> Result<HashMap<String, i64>, sqlx::Error> {
+    let mut found = lookup_quantities(tx, keys).await?;
+    let missing = missing_keys(keys, &found);
+    if !missing.is_empty() {
+        sqlx::query(
+            "INSERT INTO quantities (key) SELECT * FROM UNNEST($1::text[]) \
+             ON CONFLICT (key) DO NOTHING",
+        )
+        .bind(&missing)
+        .execute(&mut **tx)
+        .await?;
+        found.extend(lookup_quantities(tx, &missing).await?);
+    }
+    Ok(found)
+}
+
+async fn lookup_quantities(
+    tx: &mut Transaction<'static, Postgres>,
+    keys: &[String],
+) -> Result<HashMap<String, i64>, sqlx::Error> {
+    let rows: Vec<(String, i64)> =
+        sqlx::query_as("SELECT key, id FROM quantities WHERE key = ANY($1)")
+            .bind(keys)
+            .fetch_all(&mut **tx)
+            .await?;
+    Ok(rows.into_iter().collect())
+}
+
+/// Loads the current revision of every key of the batch with one query: the keys travel as three
+/// arrays unnested into `batch_keys` and joined to the readings' unique index.
+async fn current_values(
+    tx: &mut Transaction<'static, Postgres>,
+    keys: &[KeyIds],
+) -> Result<HashMap<KeyIds, CurrentValue>, sqlx::Error> {
+    let statement = format!(
+        "WITH batch_keys (observed_at_ms, station_id, quantity_id) AS \
+         (SELECT * FROM UNNEST($1::bigint[], $2::bigint[], $3::bigint[])) {CURRENT_VALUES_SELECT}"
+    );
+    let rows = sqlx::query(&statement)
+        .bind(keys.iter().map(|key| key.0).collect::<Vec<_>>())
+        .bind(keys.iter().map(|key| key.1).collect::<Vec<_>>())
+        .bind(keys.iter().map(|key| key.2).collect::<Vec<_>>())
+        .fetch_all(&mut **tx)
+        .await?;
+    let mut current = HashMap::with_capacity(rows.len());
+    for row in &rows {
+        insert_current(&mut current, row)?;
+    }
+    Ok(current)
+}
+
+impl Store for PostgresStore {
+    async fn ping(&self) -> Result<(), StoreError> {
+        shared::ping(&self.pool, &MIGRATOR).await
+    }
+
+    async fn upsert_area(&self, area: &NewArea) -> Result<Upserted, StoreError> {
+        let mut tx = self.pool.begin().await?;
+        let upserted = shared::upsert_area(&mut tx, area).await?;
+        tx.commit().await?;
+        Ok(upserted)
+    }
+
+    async fn list_areas(&self) -> Result<Vec<Area>, StoreError> {
+        shared::list_areas(&self.pool).await
+    }
+
+    async fn upsert_station(&self, station: &NewStation) -> Result<Upserted, StoreError> {
+        let mut tx = self.pool.begin().await?;
+        let upserted = shared::upsert_station(&mut tx, station).await?;
+        tx.commit().await?;
+        Ok(upserted)
+    }
+
+    async fn list_stations(&self) -> Result<Vec<Station>, StoreError> {
+        shared::list_stations(&self.pool).await
+    }
+
+    async fn station_keys_lookup(
+        &self,
+        keys: &[String],
+    ) -> Result<HashMap<String, StationRef>, StoreError> {
+        let mut tx = self.pool.begin().await?;
+        let found = lookup_stations(&mut tx, &distinct_sorted(keys)).await?;
+        tx.commit().await?;
+        Ok(found)
+    }
+
+    async fn insert_token(&self, token: &NewToken) -> Result<(), StoreError> {
+        let mut tx = self.pool.begin().await?;
+        shared::insert_token(&mut tx, token).await?;
+        tx.commit().await?;
+        Ok(())
+    }
+
+    async fn find_token_by_hash(&self, hash: &[u8]) -> Result<Option<Token>, StoreError> {
+        shared::find_token_by_hash(&self.pool, hash).await
+    }
+
+    async fn revoke_token(&self, id: &str, now_ms: i64) -> Result<(), StoreError> {
+        shared::revoke_token(&self.pool, id, now_ms).await
+    }
+
+    async fn insert_batch(
+        &self,
+        readings: &[NewReading],
+        now_ms: i64,
+    ) -> Result<BatchOutcome, StoreError> {
+        if readings.is_empty() {
+            return Ok(BatchOutcome::default());
+        }
+        with_retries(|| self.try_insert_batch(readings, now_ms)).await
+    }
+
+    async fn count_readings(&self) -> Result<u64, StoreError> {
+        shared::count(&self.pool, "SELECT COUNT(*) FROM readings").await
+    }
+
+    async fn count_pending_buckets(&self) -> Result<u64, StoreError> {
+        shared::count(&self.pool, "SELECT COUNT(*) FROM pending_buckets").await
+    }
+
+    async fn readings_history(
+        &self,
+        station: &str,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> Result<Vec<StoredReading>, StoreError> {
+        shared::readings_history(&self.pool, station, quantity, from_ms, to_ms).await
+    }
+
+    async fn reading_revisions(&self, key: &ReadingKey) -> Result<Vec<StoredReading>, StoreError> {
+        shared::reading_revisions(&self.pool, key).await
+    }
+
+    async fn close(&self) {
+        self.pool.close().await;
+    }
+}

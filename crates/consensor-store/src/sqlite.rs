@@ -1,0 +1,339 @@
+//! The SQLite implementation: the embedded default.
+//!
+//! Every connection runs in WAL mode with `synchronous=FULL`, so a transaction that has committed is
+//! on disk (the WAL is synced at each commit) and survives both a killed process and a power loss.
+//! Writing transactions start with `BEGIN IMMEDIATE`: they take the write lock before reading, so a
+//! batch never reads current values that another writer changes before it commits.
+
+use std::collections::HashMap;
+use std::str::FromStr;
+
+use sqlx::sqlite::{
+    SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
+};
+use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
+
+use crate::batch::{
+    distinct_sorted, insert_current, missing_keys, plan_batch, with_retries, AttemptError,
+    CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
+};
+use crate::{
+    Area, BatchOutcome, NewArea, NewReading, NewStation, NewToken, ReadingKey, Station, StationRef,
+    Store, StoreError, StoreOptions, StoredReading, Token, Upserted,
+};
+
+/// SQLite's default limit on bound parameters in one statement (SQLITE_MAX_VARIABLE_NUMBER since
+/// version 3.32); multi-row statements are cut into chunks that stay below it.
+const SQLITE_MAX_PARAMETERS: usize = 32_766;
+
+static MIGRATOR: sqlx::migrate::Migrator = sqlx::migrate!("../../migrations/sqlite");
+
+crate::sql::shared_queries!(sqlx::Sqlite, sqlx::SqliteConnection);
+
+/// A store backed by one SQLite file.
+#[derive(Debug, Clone)]
+pub struct SqliteStore {
+    pool: SqlitePool,
+}
+
+impl SqliteStore {
+    /// Opens (creating it if missing) the SQLite database at `url` (`sqlite://path` or
+    /// `sqlite:path`) and applies pending migrations.
+    pub async fn connect(url: &str, options: &StoreOptions) -> Result<Self, StoreError> {
+        let connect_options = SqliteConnectOptions::from_str(url)?
+            .create_if_missing(true)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(SqliteSynchronous::Full)
+            .busy_timeout(options.sqlite_busy_timeout)
+            .foreign_keys(true);
+        let pool = SqlitePoolOptions::new()
+            .max_connections(options.max_connections)
+            .acquire_timeout(options.acquire_timeout)
+            .connect_with(connect_options)
+            .await?;
+        MIGRATOR.run(&pool).await?;
+        Ok(SqliteStore { pool })
+    }
+
+    /// The underlying pool, for tests and the benchmark harness that need raw SQL (checking a
+    /// pragma, injecting a failure, a bulk-insert baseline). Application code uses [`Store`].
+    pub fn pool(&self) -> &SqlitePool {
+        &self.pool
+    }
+
+    async fn begin_immediate(&self) -> Result<Transaction<'static, Sqlite>, sqlx::Error> {
+        self.pool.begin_with("BEGIN IMMEDIATE").await
+    }
+
+    async fn try_insert_batch(
+        &self,
+        readings: &[NewReading],
+        now_ms: i64,
+    ) -> Result<BatchOutcome, AttemptError> {
+        let mut tx = self.begin_immediate().await?;
+
+        let station_keys = distinct_sorted(readings.iter().map(|reading| &reading.station));
+        let stations = lookup_stations(&mut tx, &station_keys).await?;
+        let unknown = missing_keys(&station_keys, &stations);
+        if !unknown.is_empty() {
+            return Err(AttemptError::Refused(StoreError::NotFound(format!(
+                "unknown stations: {}",
+                unknown.join(", ")
+            ))));
+        }
+        let quantity_keys = distinct_sorted(readings.iter().map(|reading| &reading.quantity));
+        let quantities = ensure_quantities(&mut tx, &quantity_keys).await?;
+
+        let resolved: Vec<ResolvedReading<'_>> = readings
+            .iter()
+            .map(|reading| {
+                let station = stations[&reading.station];
+                ResolvedReading {
+                    reading,
+                    station_id: station.station_id,
+                    area_id: station.area_id,
+                    interval_ms: station.interval_ms,
+                    quantity_id: quantities[&reading.quantity],
+                }
+            })
+            .collect();
+        let mut keys: Vec<KeyIds> = resolved.iter().map(ResolvedReading::key).collect();
+        keys.sort_unstable();
+        keys.dedup();
+        let current = current_values(&mut tx, &keys).await?;
+        let plan = plan_batch(&resolved, current);
+
+        for chunk in plan.rows.chunks(SQLITE_MAX_PARAMETERS / 8) {
+            let mut insert = QueryBuilder::<Sqlite>::new(
+                "INSERT INTO readings (observed_at_ms, station_id, quantity_id, revision, value, \
+                 value_as_sent, unit_as_sent, received_at_ms) ",
+            );
+            insert.push_values(chunk, |mut values, row| {
+                values
+                    .push_bind(row.observed_at_ms)
+                    .push_bind(row.station_id)
+                    .push_bind(row.quantity_id)
+                    .push_bind(row.revision)
+                    .push_bind(row.value)
+                    .push_bind(row.value_as_sent)
+                    .push_bind(row.unit_as_sent.as_deref())
+                    .push_bind(now_ms);
+            });
+            insert.build().execute(&mut *tx).await?;
+        }
+
+        for chunk in plan.buckets.chunks(SQLITE_MAX_PARAMETERS / 4) {
+            let mut upsert = QueryBuilder::<Sqlite>::new(
+                "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, marked_at_ms) ",
+            );
+            upsert.push_values(
+                chunk,
+                |mut values, &(area_id, quantity_id, bucket_start_ms)| {
+                    values
+                        .push_bind(area_id)
+                        .push_bind(quantity_id)
+                        .push_bind(bucket_start_ms)
+                        .push_bind(now_ms);
+                },
+            );
+            upsert.push(
+                " ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
+                 marked_at_ms = excluded.marked_at_ms, \
+                 mark_count = pending_buckets.mark_count + 1",
+            );
+            upsert.build().execute(&mut *tx).await?;
+        }
+
+        tx.commit().await?;
+        Ok(plan.outcome)
+    }
+}
+
+async fn lookup_stations(
+    tx: &mut Transaction<'static, Sqlite>,
+    keys: &[String],
+) -> Result<HashMap<String, StationRef>, sqlx::Error> {
+    let mut found = HashMap::with_capacity(keys.len());
+    for chunk in keys.chunks(SQLITE_MAX_PARAMETERS) {
+        let mut query = QueryBuilder::<Sqlite>::new(
+            "SELECT s.key, s.id, s.area_id, a.interval_ms FROM stations s \
+             JOIN areas a ON a.id = s.area_id WHERE s.key IN (",
+        );
+        let mut separated = query.separated(", ");
+        for key in chunk {
+            separated.push_bind(key.as_str());
+        }
+        query.push(")");
+        for row in query.build().fetch_all(&mut **tx).await? {
+            found.insert(
+                row.try_get::<String, _>(0)?,
+                StationRef {
+                    station_id: row.try_get(1)?,
+                    area_id: row.try_get(2)?,
+                    interval_ms: row.try_get(3)?,
+                },
+            );
+        }
+    }
+    Ok(found)
+}
+
+/// Returns the ids of the given quantity keys, adding the keys that have none yet.
+async fn ensure_quantities(
+    tx: &mut Transaction<'static, Sqlite>,
+    keys: &[String],
+) -> Result<HashMap<String, i64>, sqlx::Error> {
+    let mut found = lookup_quantities(tx, keys).await?;
+    let missing = missing_keys(keys, &found);
+    if !missing.is_empty() {
+        for chunk in missing.chunks(SQLITE_MAX_PARAMETERS) {
+            let mut insert = QueryBuilder::<Sqlite>::new("INSERT INTO quantities (key) ");
+            insert.push_values(chunk, |mut values, key| {
+                values.push_bind(key.as_str());
+            });
+            insert.push(" ON CONFLICT (key) DO NOTHING");
+            insert.build().execute(&mut **tx).await?;
+        }
+        found.extend(lookup_quantities(tx, &missing).await?);
+    }
+    Ok(found)
+}
+
+async fn lookup_quantities(
+    tx: &mut Transaction<'static, Sqlite>,
+    keys: &[String],
+) -> Result<HashMap<String, i64>, sqlx::Error> {
+    let mut found = HashMap::with_capacity(keys.len());
+    for chunk in keys.chunks(SQLITE_MAX_PARAMETERS) {
+        let mut query =
+            QueryBuilder::<Sqlite>::new("SELECT key, id FROM quantities WHERE key IN (");
+        let mut separated = query.separated(", ");
+        for key in chunk {
+            separated.push_bind(key.as_str());
+        }
+        query.push(")");
+        for row in query.build().fetch_all(&mut **tx).await? {
+            found.insert(row.try_get::<String, _>(0)?, row.try_get::<i64, _>(1)?);
+        }
+    }
+    Ok(found)
+}
+
+/// Loads the current revision of every key of the batch with one set-based query per chunk: the
+/// keys travel as a VALUES list joined to the readings' unique index.
+async fn current_values(
+    tx: &mut Transaction<'static, Sqlite>,
+    keys: &[KeyIds],
+) -> Result<HashMap<KeyIds, CurrentValue>, sqlx::Error> {
+    let mut current = HashMap::new();
+    for chunk in keys.chunks(SQLITE_MAX_PARAMETERS / 3) {
+        let mut query = QueryBuilder::<Sqlite>::new(
+            "WITH batch_keys (observed_at_ms, station_id, quantity_id) AS (",
+        );
+        query.push_values(
+            chunk,
+            |mut values, &(observed_at_ms, station_id, quantity_id)| {
+                values
+                    .push_bind(observed_at_ms)
+                    .push_bind(station_id)
+                    .push_bind(quantity_id);
+            },
+        );
+        query.push(") ");
+        query.push(CURRENT_VALUES_SELECT);
+        for row in query.build().fetch_all(&mut **tx).await? {
+            insert_current(&mut current, &row)?;
+        }
+    }
+    Ok(current)
+}
+
+impl Store for SqliteStore {
+    async fn ping(&self) -> Result<(), StoreError> {
+        shared::ping(&self.pool, &MIGRATOR).await
+    }
+
+    async fn upsert_area(&self, area: &NewArea) -> Result<Upserted, StoreError> {
+        let mut tx = self.begin_immediate().await?;
+        let upserted = shared::upsert_area(&mut tx, area).await?;
+        tx.commit().await?;
+        Ok(upserted)
+    }
+
+    async fn list_areas(&self) -> Result<Vec<Area>, StoreError> {
+        shared::list_areas(&self.pool).await
+    }
+
+    async fn upsert_station(&self, station: &NewStation) -> Result<Upserted, StoreError> {
+        let mut tx = self.begin_immediate().await?;
+        let upserted = shared::upsert_station(&mut tx, station).await?;
+        tx.commit().await?;
+        Ok(upserted)
+    }
+
+    async fn list_stations(&self) -> Result<Vec<Station>, StoreError> {
+        shared::list_stations(&self.pool).await
+    }
+
+    async fn station_keys_lookup(
+        &self,
+        keys: &[String],
+    ) -> Result<HashMap<String, StationRef>, StoreError> {
+        let mut tx = self.pool.begin().await?;
+        let found = lookup_stations(&mut tx, &distinct_sorted(keys)).await?;
+        tx.commit().await?;
+        Ok(found)
+    }
+
+    async fn insert_token(&self, token: &NewToken) -> Result<(), StoreError> {
+        let mut tx = self.begin_immediate().await?;
+        shared::insert_token(&mut tx, token).await?;
+        tx.commit().await?;
+        Ok(())
+    }
+
+    async fn find_token_by_hash(&self, hash: &[u8]) -> Result<Option<Token>, StoreError> {
+        shared::find_token_by_hash(&self.pool, hash).await
+    }
+
+    async fn revoke_token(&self, id: &str, now_ms: i64) -> Result<(), StoreError> {
+        shared::revoke_token(&self.pool, id, now_ms).await
+    }
+
+    async fn insert_batch(
+        &self,
+        readings: &[NewReading],
+        now_ms: i64,
+    ) -> Result<BatchOutcome, StoreError> {
+        if readings.is_empty() {
+            return Ok(BatchOutcome::default());
+        }
+        with_retries(|| self.try_insert_batch(readings, now_ms)).await
+    }
+
+    async fn count_readings(&self) -> Result<u64, StoreError> {
+        shared::count(&self.pool, "SELECT COUNT(*) FROM readings").await
+    }
+
+    async fn count_pending_buckets(&self) -> Result<u64, StoreError> {
+        shared::count(&self.pool, "SELECT COUNT(*) FROM pending_buckets").await
+    }
+
+    async fn readings_history(
+        &self,
+        station: &str,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> Result<Vec<StoredReading>, StoreError> {
+        shared::readings_history(&self.pool, station, quantity, from_ms, to_ms).await
+    }
+
+    async fn reading_revisions(&self, key: &ReadingKey) -> Result<Vec<StoredReading>, StoreError> {
+        shared::reading_revisions(&self.pool, key).await
+    }
+
+    async fn close(&self) {
+        self.pool.close().await;
+    }
+}
