@@ -9,3 +9,4 @@ pub mod stats;
 
 pub mod checks;
 pub mod ids;
+pub mod units;
