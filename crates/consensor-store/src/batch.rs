@@ -152,15 +152,22 @@ impl From<sqlx::Error> for AttemptError {
     }
 }
 
+impl From<StoreError> for AttemptError {
+    fn from(error: StoreError) -> Self {
+        AttemptError::Refused(error)
+    }
+}
+
 /// How many times a batch is attempted when concurrent writers collide. A collision means another
 /// batch committed the same new key first; the next attempt sees its row and classifies against it.
 const BATCH_ATTEMPTS: usize = 4;
 
-/// Runs one batch transaction, again when it failed for a reason another attempt can cure.
-pub(crate) async fn with_retries<F, Fut>(mut attempt: F) -> Result<BatchOutcome, StoreError>
+/// Runs one transaction (a batch, a result, a recompute request), again when it failed for a reason
+/// another attempt can cure.
+pub(crate) async fn with_retries<T, F, Fut>(mut attempt: F) -> Result<T, StoreError>
 where
     F: FnMut() -> Fut,
-    Fut: Future<Output = Result<BatchOutcome, AttemptError>>,
+    Fut: Future<Output = Result<T, AttemptError>>,
 {
     let mut attempts_left = BATCH_ATTEMPTS;
     loop {

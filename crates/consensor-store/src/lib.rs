@@ -23,6 +23,10 @@
 //! * `pending_buckets(area_id, quantity_id, bucket_start_ms, marked_at_ms, mark_count, claimed_by,
 //!   claimed_at_ms)`: the (area, quantity, interval) triples whose consensus must be (re)computed,
 //!   marked in the same transaction as the readings that touch them.
+//! * Migration 0002: `interval_results` (one row per computation of an interval: revision 1, 2, …,
+//!   every `Point` field; append-only), `interval_latest` (the latest revision of each interval),
+//!   `set_aside` and `interval_station_values` (per result), and `reviews` (the append-only audit
+//!   log of review decisions). See the crate's README for claims, revisions and the listing rules.
 //!
 //! # Why the readings' key starts with time
 //! Live readings arrive time-major: every station's reading for minute t, then every station's for
@@ -46,11 +50,17 @@ mod batch;
 mod error;
 mod model;
 mod postgres;
+mod results;
+mod results_sql;
 mod sql;
 mod sqlite;
+#[cfg(feature = "testing")]
+pub mod testing;
 
 use std::collections::HashMap;
 use std::future::Future;
+
+use consensor_core::checks::IntervalOutcome;
 
 pub use batch::bucket_start_ms;
 pub use error::StoreError;
@@ -59,6 +69,11 @@ pub use model::{
     StoreOptions, StoredReading, Token, Upserted,
 };
 pub use postgres::PostgresStore;
+pub use results::{
+    AuditFilter, BadCursor, ClaimedBucket, IntervalData, Page, ReadingCounts, ResultRow,
+    ReviewDecision, ReviewRecord, ReviewState, ReviewSummary, SetAsideCursor, SetAsideFilter,
+    SetAsideRow, StationResidual, StationSeries, StoredResult,
+};
 pub use sqlite::SqliteStore;
 
 /// Everything the rest of Consensor asks of its storage. All times are milliseconds since the Unix
@@ -142,6 +157,157 @@ pub trait Store: Send + Sync {
         &self,
         key: &ReadingKey,
     ) -> impl Future<Output = Result<Vec<StoredReading>, StoreError>> + Send;
+
+    /// Claims up to `limit` pending buckets for `worker`, oldest `marked_at_ms` first, and returns
+    /// them in that order. A bucket can be claimed when it is unclaimed or when its claim is older
+    /// than `stale_after_ms` (`claimed_at_ms < now_ms - stale_after_ms`): the worker that held it is
+    /// taken to have crashed. The claim records `worker` and `now_ms`. On PostgreSQL the candidates
+    /// are locked with `FOR UPDATE SKIP LOCKED`, so concurrent claimers in several processes never
+    /// receive the same bucket; on SQLite the claim is one `BEGIN IMMEDIATE` transaction, which
+    /// serialises claimers.
+    fn claim_buckets(
+        &self,
+        worker: &str,
+        now_ms: i64,
+        limit: usize,
+        stale_after_ms: i64,
+    ) -> impl Future<Output = Result<Vec<ClaimedBucket>, StoreError>> + Send;
+
+    /// The current revision of every reading of the quantity from the area's stations observed in
+    /// `[from_ms, to_ms)`, grouped by station (ordered by station key) and ordered by time, plus the
+    /// ids among them whose latest review is an overturn. The worker passes a range that starts
+    /// before the interval so the step and flat-line tests see the history they look back on. An
+    /// unknown quantity has no readings.
+    fn load_interval(
+        &self,
+        area_id: i64,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> impl Future<Output = Result<IntervalData, StoreError>> + Send;
+
+    /// Stores the decision of a claimed bucket in one transaction: a new `interval_results` row with
+    /// the next revision (1 for the first) and every `Point` field, its set-aside records (with
+    /// `reasons[i]` as the reason of `outcome.set_aside[i]`) and station values, and the interval's
+    /// latest-revision pointer. `station_ids[h]` is the row id of the station the outcome calls
+    /// `h` (`StationReadings::station`). The same transaction removes the pending bucket if its
+    /// `mark_count` is still the claimed one, and otherwise releases the claim so that the newer
+    /// readings are computed into yet another revision. Earlier revisions are never changed.
+    /// `Other` when the outcome names a station handle outside `station_ids` or the reasons do not
+    /// match the records one to one.
+    fn store_result(
+        &self,
+        bucket: &ClaimedBucket,
+        outcome: &IntervalOutcome,
+        station_ids: &[i64],
+        reasons: &[String],
+        now_ms: i64,
+    ) -> impl Future<Output = Result<StoredResult, StoreError>> + Send;
+
+    /// The latest revision of every interval of the area and quantity with a result and a start in
+    /// `[from_ms, to_ms)`, ordered by start. Empty for an unknown area or quantity.
+    fn series(
+        &self,
+        area: &str,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> impl Future<Output = Result<Vec<ResultRow>, StoreError>> + Send;
+
+    /// The latest revision of the newest interval of the area and quantity that has a result.
+    fn latest(
+        &self,
+        area: &str,
+        quantity: &str,
+    ) -> impl Future<Output = Result<Option<ResultRow>, StoreError>> + Send;
+
+    /// One interval's result: revision `revision`, or the latest when it is `None`.
+    fn result_revision(
+        &self,
+        area: &str,
+        quantity: &str,
+        start_ms: i64,
+        revision: Option<i64>,
+    ) -> impl Future<Output = Result<Option<ResultRow>, StoreError>> + Send;
+
+    /// One page of at most `limit` set-aside readings matching `filter`, ordered by
+    /// (observed_at_ms, reading_id, result_id), starting after `after`. Listed are the records of the
+    /// latest revision of each interval; in addition, a reading whose latest review is an overturn
+    /// is listed with its newest record even when the newer revision (which uses it again) no longer
+    /// sets it aside, so that `review = Overturned` finds every overturned reading. A record of an
+    /// older revision that the latest one dropped for any other reason is not listed.
+    fn list_set_aside(
+        &self,
+        filter: &SetAsideFilter,
+        limit: usize,
+        after: Option<SetAsideCursor>,
+    ) -> impl Future<Output = Result<Page<SetAsideRow, SetAsideCursor>, StoreError>> + Send;
+
+    /// Appends a review decision to the audit log and, in the same transaction, marks the interval
+    /// in which the reading was last set aside pending, so that the worker computes a new revision
+    /// that applies the decision. `by` is the deciding token's id. `NotFound` when no result ever
+    /// set the reading aside.
+    fn review_reading(
+        &self,
+        reading_id: i64,
+        decision: ReviewDecision,
+        note: Option<&str>,
+        by: &str,
+        now_ms: i64,
+    ) -> impl Future<Output = Result<ReviewRecord, StoreError>> + Send;
+
+    /// One page of at most `limit` review log entries matching `filter`, newest first, starting
+    /// below review id `before_id` (the previous page's `next_cursor`).
+    fn audit(
+        &self,
+        filter: &AuditFilter,
+        limit: usize,
+        before_id: Option<i64>,
+    ) -> impl Future<Output = Result<Page<ReviewRecord, i64>, StoreError>> + Send;
+
+    /// Marks pending every interval of the area — of one quantity, or of all when `quantity` is
+    /// `None` — whose start lies in `[from_ms, to_ms)` and which holds at least one reading, and
+    /// returns how many were marked. Each will get a new revision. `NotFound` for an unknown area.
+    fn mark_for_recompute(
+        &self,
+        area: &str,
+        quantity: Option<&str>,
+        from_ms: i64,
+        to_ms: i64,
+        now_ms: i64,
+    ) -> impl Future<Output = Result<u64, StoreError>> + Send;
+
+    /// The most recent `computed_at_ms` of any result; `None` before the first.
+    fn last_computed_at(&self) -> impl Future<Output = Result<Option<i64>, StoreError>> + Send;
+
+    /// For each interval of the station's current area with a start in `[from_ms, to_ms)` whose
+    /// latest result has both a value for the station and an area median: the two, oldest first.
+    /// Station values that were set aside as far from the consensus are included (`used` false),
+    /// since a drifting station is exactly what the health report must show.
+    fn station_residuals(
+        &self,
+        station: &str,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> impl Future<Output = Result<Vec<StationResidual>, StoreError>> + Send;
+
+    /// How many current readings of the station and quantity were observed in `[from_ms, to_ms)`,
+    /// and how many of those the latest results set aside.
+    fn station_reading_counts(
+        &self,
+        station: &str,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> impl Future<Output = Result<ReadingCounts, StoreError>> + Send;
+
+    /// The observation time of the station's newest reading of any quantity; `None` when it has
+    /// none or the key is unknown.
+    fn last_seen(
+        &self,
+        station: &str,
+    ) -> impl Future<Output = Result<Option<i64>, StoreError>> + Send;
 
     /// Closes the pool, waiting for connections in use to be returned.
     fn close(&self) -> impl Future<Output = ()> + Send;
@@ -280,6 +446,129 @@ impl Store for AnyStore {
 
     async fn reading_revisions(&self, key: &ReadingKey) -> Result<Vec<StoredReading>, StoreError> {
         dispatch!(self, store => store.reading_revisions(key))
+    }
+
+    async fn claim_buckets(
+        &self,
+        worker: &str,
+        now_ms: i64,
+        limit: usize,
+        stale_after_ms: i64,
+    ) -> Result<Vec<ClaimedBucket>, StoreError> {
+        dispatch!(self, store => store.claim_buckets(worker, now_ms, limit, stale_after_ms))
+    }
+
+    async fn load_interval(
+        &self,
+        area_id: i64,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> Result<IntervalData, StoreError> {
+        dispatch!(self, store => store.load_interval(area_id, quantity, from_ms, to_ms))
+    }
+
+    async fn store_result(
+        &self,
+        bucket: &ClaimedBucket,
+        outcome: &IntervalOutcome,
+        station_ids: &[i64],
+        reasons: &[String],
+        now_ms: i64,
+    ) -> Result<StoredResult, StoreError> {
+        dispatch!(self, store => store.store_result(bucket, outcome, station_ids, reasons, now_ms))
+    }
+
+    async fn series(
+        &self,
+        area: &str,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> Result<Vec<ResultRow>, StoreError> {
+        dispatch!(self, store => store.series(area, quantity, from_ms, to_ms))
+    }
+
+    async fn latest(&self, area: &str, quantity: &str) -> Result<Option<ResultRow>, StoreError> {
+        dispatch!(self, store => store.latest(area, quantity))
+    }
+
+    async fn result_revision(
+        &self,
+        area: &str,
+        quantity: &str,
+        start_ms: i64,
+        revision: Option<i64>,
+    ) -> Result<Option<ResultRow>, StoreError> {
+        dispatch!(self, store => store.result_revision(area, quantity, start_ms, revision))
+    }
+
+    async fn list_set_aside(
+        &self,
+        filter: &SetAsideFilter,
+        limit: usize,
+        after: Option<SetAsideCursor>,
+    ) -> Result<Page<SetAsideRow, SetAsideCursor>, StoreError> {
+        dispatch!(self, store => store.list_set_aside(filter, limit, after))
+    }
+
+    async fn review_reading(
+        &self,
+        reading_id: i64,
+        decision: ReviewDecision,
+        note: Option<&str>,
+        by: &str,
+        now_ms: i64,
+    ) -> Result<ReviewRecord, StoreError> {
+        dispatch!(self, store => store.review_reading(reading_id, decision, note, by, now_ms))
+    }
+
+    async fn audit(
+        &self,
+        filter: &AuditFilter,
+        limit: usize,
+        before_id: Option<i64>,
+    ) -> Result<Page<ReviewRecord, i64>, StoreError> {
+        dispatch!(self, store => store.audit(filter, limit, before_id))
+    }
+
+    async fn mark_for_recompute(
+        &self,
+        area: &str,
+        quantity: Option<&str>,
+        from_ms: i64,
+        to_ms: i64,
+        now_ms: i64,
+    ) -> Result<u64, StoreError> {
+        dispatch!(self, store => store.mark_for_recompute(area, quantity, from_ms, to_ms, now_ms))
+    }
+
+    async fn last_computed_at(&self) -> Result<Option<i64>, StoreError> {
+        dispatch!(self, store => store.last_computed_at())
+    }
+
+    async fn station_residuals(
+        &self,
+        station: &str,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> Result<Vec<StationResidual>, StoreError> {
+        dispatch!(self, store => store.station_residuals(station, quantity, from_ms, to_ms))
+    }
+
+    async fn station_reading_counts(
+        &self,
+        station: &str,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> Result<ReadingCounts, StoreError> {
+        dispatch!(self, store => store.station_reading_counts(station, quantity, from_ms, to_ms))
+    }
+
+    async fn last_seen(&self, station: &str) -> Result<Option<i64>, StoreError> {
+        dispatch!(self, store => store.last_seen(station))
     }
 
     async fn close(&self) {

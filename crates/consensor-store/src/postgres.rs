@@ -14,13 +14,14 @@ use crate::batch::{
     CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
 };
 use crate::{
-    Area, BatchOutcome, NewArea, NewReading, NewStation, NewToken, ReadingKey, Station, StationRef,
-    Store, StoreError, StoreOptions, StoredReading, Token, Upserted,
+    Area, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken, ReadingKey,
+    Station, StationRef, Store, StoreError, StoreOptions, StoredReading, Token, Upserted,
 };
 
 static MIGRATOR: sqlx::migrate::Migrator = sqlx::migrate!("../../migrations/postgres");
 
 crate::sql::shared_queries!(sqlx::Postgres, sqlx::PgConnection);
+crate::results_sql::result_queries!(sqlx::Postgres, sqlx::PgConnection);
 
 /// A store backed by a PostgreSQL database.
 #[derive(Debug, Clone)]
@@ -46,6 +47,13 @@ impl PostgresStore {
     /// uses [`Store`].
     pub fn pool(&self) -> &PgPool {
         &self.pool
+    }
+
+    /// The transaction every writing method starts with (the shared result methods call it by this
+    /// name on both backends). PostgreSQL's default READ COMMITTED suffices: the writes rely on row
+    /// locks and unique keys, not on snapshots.
+    async fn begin_write(&self) -> Result<Transaction<'static, Postgres>, sqlx::Error> {
+        self.pool.begin().await
     }
 
     async fn try_insert_batch(
@@ -307,6 +315,63 @@ impl Store for PostgresStore {
     async fn reading_revisions(&self, key: &ReadingKey) -> Result<Vec<StoredReading>, StoreError> {
         shared::reading_revisions(&self.pool, key).await
     }
+
+    /// One statement claims the buckets. The `MATERIALIZED` CTE picks the candidates and locks them
+    /// with `FOR UPDATE SKIP LOCKED`, so a concurrent claimer skips every row this one is taking
+    /// instead of waiting for it; a row that another claimer committed as claimed between this
+    /// statement's snapshot and its lock is re-checked against the `WHERE` clause by PostgreSQL
+    /// after locking, and left out. The UPDATE then marks exactly the locked rows.
+    async fn claim_buckets(
+        &self,
+        worker: &str,
+        now_ms: i64,
+        limit: usize,
+        stale_after_ms: i64,
+    ) -> Result<Vec<ClaimedBucket>, StoreError> {
+        if limit == 0 {
+            return Ok(Vec::new());
+        }
+        let rows = sqlx::query(
+            "WITH candidates AS MATERIALIZED ( \
+               SELECT area_id, quantity_id, bucket_start_ms FROM pending_buckets \
+               WHERE claimed_at_ms IS NULL OR claimed_at_ms < $3 \
+               ORDER BY marked_at_ms, area_id, quantity_id, bucket_start_ms \
+               LIMIT $4 FOR UPDATE SKIP LOCKED), \
+             claimed AS ( \
+               UPDATE pending_buckets p SET claimed_by = $1, claimed_at_ms = $2 \
+               FROM candidates c WHERE p.area_id = c.area_id \
+               AND p.quantity_id = c.quantity_id AND p.bucket_start_ms = c.bucket_start_ms \
+               RETURNING p.area_id, p.quantity_id, p.bucket_start_ms, p.mark_count, \
+               p.marked_at_ms) \
+             SELECT c.area_id, a.key, c.quantity_id, q.key, c.bucket_start_ms, a.interval_ms, \
+             c.mark_count \
+             FROM claimed c JOIN areas a ON a.id = c.area_id \
+             JOIN quantities q ON q.id = c.quantity_id \
+             ORDER BY c.marked_at_ms, c.area_id, c.quantity_id, c.bucket_start_ms",
+        )
+        .bind(worker)
+        .bind(now_ms)
+        .bind(now_ms.saturating_sub(stale_after_ms))
+        .bind(i64::try_from(limit).unwrap_or(i64::MAX))
+        .fetch_all(&self.pool)
+        .await?;
+        let mut claimed = Vec::with_capacity(rows.len());
+        for row in &rows {
+            claimed.push(ClaimedBucket {
+                area_id: row.try_get(0)?,
+                area_key: row.try_get(1)?,
+                quantity_id: row.try_get(2)?,
+                quantity: row.try_get(3)?,
+                bucket_start_ms: row.try_get(4)?,
+                interval_ms: row.try_get(5)?,
+                mark_count: row.try_get(6)?,
+                claimed_by: worker.to_owned(),
+            });
+        }
+        Ok(claimed)
+    }
+
+    crate::results_sql::result_store_methods!();
 
     async fn close(&self) {
         self.pool.close().await;

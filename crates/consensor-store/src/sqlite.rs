@@ -18,8 +18,8 @@ use crate::batch::{
     CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
 };
 use crate::{
-    Area, BatchOutcome, NewArea, NewReading, NewStation, NewToken, ReadingKey, Station, StationRef,
-    Store, StoreError, StoreOptions, StoredReading, Token, Upserted,
+    Area, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken, ReadingKey,
+    Station, StationRef, Store, StoreError, StoreOptions, StoredReading, Token, Upserted,
 };
 
 /// SQLite's default limit on bound parameters in one statement (SQLITE_MAX_VARIABLE_NUMBER since
@@ -29,6 +29,7 @@ const SQLITE_MAX_PARAMETERS: usize = 32_766;
 static MIGRATOR: sqlx::migrate::Migrator = sqlx::migrate!("../../migrations/sqlite");
 
 crate::sql::shared_queries!(sqlx::Sqlite, sqlx::SqliteConnection);
+crate::results_sql::result_queries!(sqlx::Sqlite, sqlx::SqliteConnection);
 
 /// A store backed by one SQLite file.
 #[derive(Debug, Clone)]
@@ -63,6 +64,69 @@ impl SqliteStore {
 
     async fn begin_immediate(&self) -> Result<Transaction<'static, Sqlite>, sqlx::Error> {
         self.pool.begin_with("BEGIN IMMEDIATE").await
+    }
+
+    /// The transaction every writing method starts with (the shared result methods call it by this
+    /// name on both backends).
+    async fn begin_write(&self) -> Result<Transaction<'static, Sqlite>, sqlx::Error> {
+        self.begin_immediate().await
+    }
+
+    /// Claims buckets inside one `BEGIN IMMEDIATE` transaction: it holds SQLite's write lock from
+    /// its first statement, so no other claimer can read the same candidates before this one has
+    /// marked them.
+    async fn try_claim_buckets(
+        &self,
+        worker: &str,
+        now_ms: i64,
+        limit: usize,
+        stale_after_ms: i64,
+    ) -> Result<Vec<ClaimedBucket>, sqlx::Error> {
+        let mut tx = self.begin_immediate().await?;
+        let rows = sqlx::query(
+            "SELECT p.rowid, p.area_id, a.key, p.quantity_id, q.key, p.bucket_start_ms, \
+             a.interval_ms, p.mark_count \
+             FROM pending_buckets p JOIN areas a ON a.id = p.area_id \
+             JOIN quantities q ON q.id = p.quantity_id \
+             WHERE p.claimed_at_ms IS NULL OR p.claimed_at_ms < $1 \
+             ORDER BY p.marked_at_ms, p.area_id, p.quantity_id, p.bucket_start_ms LIMIT $2",
+        )
+        .bind(now_ms.saturating_sub(stale_after_ms))
+        .bind(i64::try_from(limit).unwrap_or(i64::MAX))
+        .fetch_all(&mut *tx)
+        .await?;
+        let mut row_ids = Vec::with_capacity(rows.len());
+        let mut claimed = Vec::with_capacity(rows.len());
+        for row in &rows {
+            row_ids.push(row.try_get::<i64, _>(0)?);
+            claimed.push(ClaimedBucket {
+                area_id: row.try_get(1)?,
+                area_key: row.try_get(2)?,
+                quantity_id: row.try_get(3)?,
+                quantity: row.try_get(4)?,
+                bucket_start_ms: row.try_get(5)?,
+                interval_ms: row.try_get(6)?,
+                mark_count: row.try_get(7)?,
+                claimed_by: worker.to_owned(),
+            });
+        }
+        for chunk in row_ids.chunks(SQLITE_MAX_PARAMETERS - 2) {
+            let mut update =
+                QueryBuilder::<Sqlite>::new("UPDATE pending_buckets SET claimed_by = ");
+            update
+                .push_bind(worker)
+                .push(", claimed_at_ms = ")
+                .push_bind(now_ms)
+                .push(" WHERE rowid IN (");
+            let mut separated = update.separated(", ");
+            for row_id in chunk {
+                separated.push_bind(*row_id);
+            }
+            update.push(")");
+            update.build().execute(&mut *tx).await?;
+        }
+        tx.commit().await?;
+        Ok(claimed)
     }
 
     async fn try_insert_batch(
@@ -332,6 +396,23 @@ impl Store for SqliteStore {
     async fn reading_revisions(&self, key: &ReadingKey) -> Result<Vec<StoredReading>, StoreError> {
         shared::reading_revisions(&self.pool, key).await
     }
+
+    async fn claim_buckets(
+        &self,
+        worker: &str,
+        now_ms: i64,
+        limit: usize,
+        stale_after_ms: i64,
+    ) -> Result<Vec<ClaimedBucket>, StoreError> {
+        if limit == 0 {
+            return Ok(Vec::new());
+        }
+        Ok(self
+            .try_claim_buckets(worker, now_ms, limit, stale_after_ms)
+            .await?)
+    }
+
+    crate::results_sql::result_store_methods!();
 
     async fn close(&self) {
         self.pool.close().await;

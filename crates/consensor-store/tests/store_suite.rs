@@ -3,12 +3,17 @@
 //! a fresh database on that server, dropped at the end). Every expected value follows from the
 //! test's own setup; the comments say how.
 
-use std::collections::BTreeSet;
-use std::sync::atomic::{AtomicU64, Ordering};
+use std::collections::{BTreeSet, HashMap};
 
+use consensor_core::checks::{
+    screen_interval, IntervalInput, IntervalOutcome, Point, Rule, Rules, SetAside, StationReadings,
+    StationValue, Status,
+};
+use consensor_store::testing::TestDatabase;
 use consensor_store::{
-    AnyStore, BatchOutcome, NewArea, NewReading, NewStation, NewToken, ReadingKey, Store,
-    StoreError,
+    AnyStore, AuditFilter, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken,
+    ReadingKey, ReviewDecision, ReviewState, SetAsideCursor, SetAsideFilter, SetAsideRow, Store,
+    StoreError, StoredReading,
 };
 
 /// Ten minutes, the interval of the test area.
@@ -18,104 +23,6 @@ const INTERVAL_MS: i64 = 600_000;
 const BASE_MS: i64 = 1_780_000_200_000;
 /// The ingest time the tests pass as `now_ms`.
 const NOW_MS: i64 = BASE_MS + 3_600_000;
-
-/// A store on a fresh database that is removed when the test finishes.
-struct TestDatabase {
-    store: AnyStore,
-    _directory: Option<tempfile::TempDir>,
-    postgres_cleanup: Option<(String, String)>,
-}
-
-impl TestDatabase {
-    async fn sqlite() -> TestDatabase {
-        let directory = tempfile::tempdir().expect("temporary directory");
-        // The file does not exist yet: connecting must create it.
-        let path = directory.path().join("consensor.db");
-        let store = consensor_store::connect(&format!("sqlite://{}", path.display()))
-            .await
-            .expect("open sqlite store");
-        TestDatabase {
-            store,
-            _directory: Some(directory),
-            postgres_cleanup: None,
-        }
-    }
-
-    /// `None`, after a loud notice, when no PostgreSQL server is configured for the tests.
-    async fn postgres() -> Option<TestDatabase> {
-        let Ok(server_url) = std::env::var("CONSENSOR_TEST_POSTGRES_URL") else {
-            announce_postgres_skipped();
-            return None;
-        };
-        static NEXT: AtomicU64 = AtomicU64::new(0);
-        let nanos = std::time::SystemTime::now()
-            .duration_since(std::time::UNIX_EPOCH)
-            .expect("clock after 1970")
-            .subsec_nanos();
-        let name = format!(
-            "consensor_test_{}_{}_{}",
-            std::process::id(),
-            nanos,
-            NEXT.fetch_add(1, Ordering::Relaxed)
-        );
-        run_on_server(&server_url, &format!("CREATE DATABASE {name}")).await;
-        let store = consensor_store::connect(&database_url(&server_url, &name))
-            .await
-            .expect("open postgres store");
-        Some(TestDatabase {
-            store,
-            _directory: None,
-            postgres_cleanup: Some((server_url, name)),
-        })
-    }
-
-    async fn finish(self) {
-        self.store.close().await;
-        if let Some((server_url, name)) = self.postgres_cleanup {
-            run_on_server(&server_url, &format!("DROP DATABASE {name} WITH (FORCE)")).await;
-        }
-    }
-}
-
-/// Says loudly, once per test process, that the PostgreSQL variants are skipped. It writes to the
-/// stderr handle itself because libtest captures `eprintln!` of passing tests, which would hide it.
-fn announce_postgres_skipped() {
-    use std::io::Write;
-    static ONCE: std::sync::Once = std::sync::Once::new();
-    ONCE.call_once(|| {
-        let _ = writeln!(
-            std::io::stderr(),
-            "\n!!! CONSENSOR_TEST_POSTGRES_URL is not set: SKIPPING every PostgreSQL variant of \
-             the storage suite. Set it (e.g. postgres://postgres@127.0.0.1:5432/test) to run \
-             them. !!!\n"
-        );
-    });
-}
-
-/// The URL of database `name` on the server of `server_url` (same user, host and options).
-fn database_url(server_url: &str, name: &str) -> String {
-    let (without_query, query) = match server_url.split_once('?') {
-        Some((base, query)) => (base, format!("?{query}")),
-        None => (server_url, String::new()),
-    };
-    let scheme_end = without_query.find("://").expect("URL with a scheme") + 3;
-    let authority_end = without_query[scheme_end..]
-        .find('/')
-        .map_or(without_query.len(), |slash| scheme_end + slash);
-    format!("{}/{name}{query}", &without_query[..authority_end])
-}
-
-async fn run_on_server(server_url: &str, statement: &str) {
-    use sqlx::Connection;
-    let mut connection = sqlx::PgConnection::connect(server_url)
-        .await
-        .expect("connect to the PostgreSQL test server");
-    sqlx::raw_sql(statement)
-        .execute(&mut connection)
-        .await
-        .unwrap_or_else(|error| panic!("{statement}: {error}"));
-    connection.close().await.expect("close admin connection");
-}
 
 /// Runs raw SQL (which may hold several statements) on whichever backend the store uses.
 async fn execute_raw(store: &AnyStore, sqlite_sql: &str, postgres_sql: &str) {
@@ -151,27 +58,36 @@ macro_rules! fetch_all_raw {
     };
 }
 
-/// Generates one `#[tokio::test]` per backend for each named case.
+/// Generates one test per backend for each named case. Every case gets a store on a fresh
+/// database (an SQLite file that does not exist yet, or a new database on the PostgreSQL server) and
+/// the database itself, for cases that open a second store on it. The runtime has two worker
+/// threads so that the concurrency cases really run their tasks in parallel.
 macro_rules! on_both_backends {
     ($($case:ident),* $(,)?) => {
         mod sqlite_backend {
+            use super::Store;
             $(
-                #[tokio::test]
+                #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
                 async fn $case() {
-                    let database = super::TestDatabase::sqlite().await;
-                    super::$case(&database.store).await;
+                    let database = super::TestDatabase::sqlite();
+                    let store = database.open().await;
+                    super::$case(&store, &database).await;
+                    store.close().await;
                     database.finish().await;
                 }
             )*
         }
         mod postgres_backend {
+            use super::Store;
             $(
-                #[tokio::test]
+                #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
                 async fn $case() {
                     let Some(database) = super::TestDatabase::postgres().await else {
                         return;
                     };
-                    super::$case(&database.store).await;
+                    let store = database.open().await;
+                    super::$case(&store, &database).await;
+                    store.close().await;
                     database.finish().await;
                 }
             )*
@@ -192,6 +108,18 @@ on_both_backends!(
     pending_buckets_are_marked_with_interval_starts,
     concurrent_identical_batches_store_each_reading_once,
     tokens_insert_find_and_revoke,
+    claim_then_store_result_removes_the_bucket,
+    bucket_marked_again_during_computation_stays_pending,
+    stale_claim_is_taken_over_and_fresh_one_is_not,
+    concurrent_claimers_never_share_a_bucket,
+    load_interval_returns_current_readings_by_station,
+    result_revisions_grow_and_earlier_ones_stay_readable,
+    series_latest_and_result_revision,
+    set_aside_listing_filters_and_pages,
+    reviews_are_audited_and_mark_the_interval_again,
+    mark_for_recompute_counts_intervals_with_readings,
+    station_health_figures,
+    real_interval_decision_round_trip,
 );
 
 /// Creates area `north-basin` (10-minute intervals) with stations ST-1 and ST-2.
@@ -250,12 +178,12 @@ fn six_readings() -> Vec<NewReading> {
     readings
 }
 
-async fn ping_reports_ready(store: &AnyStore) {
+async fn ping_reports_ready(store: &AnyStore, _database: &TestDatabase) {
     // connect() ran the migrations, so the readiness check must pass.
     store.ping().await.expect("ping");
 }
 
-async fn durability_settings_are_in_force(store: &AnyStore) {
+async fn durability_settings_are_in_force(store: &AnyStore, _database: &TestDatabase) {
     match store {
         AnyStore::Sqlite(sqlite) => {
             let mut connection = sqlite.pool().acquire().await.expect("connection");
@@ -295,7 +223,7 @@ async fn durability_settings_are_in_force(store: &AnyStore) {
     }
 }
 
-async fn area_and_station_upserts_report_creation(store: &AnyStore) {
+async fn area_and_station_upserts_report_creation(store: &AnyStore, _database: &TestDatabase) {
     let area = NewArea {
         key: "north-basin".to_owned(),
         name: "North basin".to_owned(),
@@ -345,7 +273,7 @@ async fn area_and_station_upserts_report_creation(store: &AnyStore) {
     assert!(matches!(error, StoreError::NotFound(_)), "{error:?}");
 }
 
-async fn station_keys_lookup_resolves_a_batch(store: &AnyStore) {
+async fn station_keys_lookup_resolves_a_batch(store: &AnyStore, _database: &TestDatabase) {
     network(store).await;
     let stations = store.list_stations().await.expect("stations");
     let keys = vec!["ST-2".to_owned(), "ST-404".to_owned(), "ST-1".to_owned()];
@@ -361,7 +289,7 @@ async fn station_keys_lookup_resolves_a_batch(store: &AnyStore) {
     }
 }
 
-async fn same_batch_twice_is_stored_once(store: &AnyStore) {
+async fn same_batch_twice_is_stored_once(store: &AnyStore, _database: &TestDatabase) {
     network(store).await;
     let batch = six_readings();
     let first = store.insert_batch(&batch, NOW_MS).await.expect("first");
@@ -406,7 +334,10 @@ async fn same_batch_twice_is_stored_once(store: &AnyStore) {
     assert_eq!(window.len(), 2);
 }
 
-async fn changed_value_is_a_revision_and_the_old_one_stays_readable(store: &AnyStore) {
+async fn changed_value_is_a_revision_and_the_old_one_stays_readable(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
     network(store).await;
     let original = reading("ST-1", "air_temperature", BASE_MS, 13.9);
     store
@@ -477,7 +408,7 @@ async fn changed_value_is_a_revision_and_the_old_one_stays_readable(store: &AnyS
     assert_eq!(store.count_readings().await.expect("count"), 3);
 }
 
-async fn repeated_key_within_one_batch(store: &AnyStore) {
+async fn repeated_key_within_one_batch(store: &AnyStore, _database: &TestDatabase) {
     network(store).await;
     let first = reading("ST-2", "dew_point", BASE_MS, 5.0);
     let changed = reading("ST-2", "dew_point", BASE_MS, 5.5);
@@ -523,7 +454,7 @@ async fn repeated_key_within_one_batch(store: &AnyStore) {
     assert_eq!(again.duplicates, 1);
 }
 
-async fn unknown_station_refuses_the_whole_batch(store: &AnyStore) {
+async fn unknown_station_refuses_the_whole_batch(store: &AnyStore, _database: &TestDatabase) {
     network(store).await;
     let batch = vec![
         reading("ST-1", "air_temperature", BASE_MS, 13.0),
@@ -542,7 +473,7 @@ async fn unknown_station_refuses_the_whole_batch(store: &AnyStore) {
 /// The value the injected trigger rejects; no other reading of the test carries it.
 const POISON: f64 = -12_345.0;
 
-async fn failure_midway_through_a_batch_stores_nothing(store: &AnyStore) {
+async fn failure_midway_through_a_batch_stores_nothing(store: &AnyStore, _database: &TestDatabase) {
     network(store).await;
     // A trigger makes the database itself fail on one row, as a constraint or I/O failure would.
     execute_raw(
@@ -584,7 +515,10 @@ async fn failure_midway_through_a_batch_stores_nothing(store: &AnyStore) {
     assert_eq!(store.count_readings().await.expect("count"), 5_000);
 }
 
-async fn pending_buckets_are_marked_with_interval_starts(store: &AnyStore) {
+async fn pending_buckets_are_marked_with_interval_starts(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
     network(store).await;
     let batch = vec![
         // BASE_MS starts a 10-minute bucket; BASE_MS + 599 999 ms is its last millisecond.
@@ -651,7 +585,10 @@ async fn pending_buckets_are_marked_with_interval_starts(store: &AnyStore) {
     );
 }
 
-async fn concurrent_identical_batches_store_each_reading_once(store: &AnyStore) {
+async fn concurrent_identical_batches_store_each_reading_once(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
     network(store).await;
     let batch = six_readings();
     let mut tasks = Vec::new();
@@ -682,7 +619,7 @@ async fn concurrent_identical_batches_store_each_reading_once(store: &AnyStore) 
     assert_eq!(store.count_readings().await.expect("count"), 6);
 }
 
-async fn tokens_insert_find_and_revoke(store: &AnyStore) {
+async fn tokens_insert_find_and_revoke(store: &AnyStore, _database: &TestDatabase) {
     let token = NewToken {
         id: "tok_1".to_owned(),
         hash: vec![0xAB; 32],
@@ -765,4 +702,1476 @@ async fn tokens_insert_find_and_revoke(store: &AnyStore) {
     );
     let bound: BTreeSet<String> = bindings.into_iter().map(|(_, key)| key).collect();
     assert_eq!(bound.len(), 2);
+}
+
+// ---------------------------------------------------------------------------------------------
+// The consensus side: claims, results and their revisions, set-aside records, reviews, recompute
+// requests and the station health figures.
+// ---------------------------------------------------------------------------------------------
+
+/// How long a claim stays valid in these tests before another worker may take it over.
+const STALE_MS: i64 = 60_000;
+
+/// Creates area `north-basin` with stations ST-1 … ST-`count` (10-minute intervals).
+async fn network_of(store: &AnyStore, count: usize) {
+    store
+        .upsert_area(&NewArea {
+            key: "north-basin".to_owned(),
+            name: "North basin".to_owned(),
+            interval_ms: INTERVAL_MS,
+        })
+        .await
+        .expect("area");
+    for index in 1..=count {
+        store
+            .upsert_station(&station(&format!("ST-{index}"), "north-basin"))
+            .await
+            .expect("station");
+    }
+}
+
+/// The row ids of the stations by key.
+async fn station_ids(store: &AnyStore) -> HashMap<String, i64> {
+    store
+        .list_stations()
+        .await
+        .expect("stations")
+        .into_iter()
+        .map(|station| (station.key, station.id))
+        .collect()
+}
+
+/// The stored (current) reading of one key.
+async fn stored(store: &AnyStore, station: &str, quantity: &str, at_ms: i64) -> StoredReading {
+    let mut history = store
+        .readings_history(station, quantity, at_ms, at_ms + 1)
+        .await
+        .expect("history");
+    assert_eq!(history.len(), 1, "{station} {quantity} {at_ms}");
+    history.remove(0)
+}
+
+/// Claims every pending bucket (as worker `w`) and indexes them by (area, quantity, start).
+async fn claim_all(store: &AnyStore, now_ms: i64) -> HashMap<(String, String, i64), ClaimedBucket> {
+    store
+        .claim_buckets("w", now_ms, 1_000, STALE_MS)
+        .await
+        .expect("claim")
+        .into_iter()
+        .map(|bucket| {
+            (
+                (
+                    bucket.area_key.clone(),
+                    bucket.quantity.clone(),
+                    bucket.bucket_start_ms,
+                ),
+                bucket,
+            )
+        })
+        .collect()
+}
+
+/// A `Point` with the given median (and every other estimate derived from it by a fixed offset, so
+/// that a test can tell the fields apart after the round trip through the database).
+fn point(median: Option<f64>, stations_used: u32, stations_set_aside: u32) -> Point {
+    let shifted = |offset: f64| median.map(|m| m + offset);
+    Point {
+        median,
+        median_low: shifted(-0.05),
+        median_high: shifted(0.05),
+        mean: shifted(0.01),
+        mean_all: shifted(2.5),
+        mad: median.map(|_| 0.1),
+        spread: median.map(|_| 0.148_260_221_850_560_2),
+        ci95_low: None,
+        ci95_high: None,
+        huber: shifted(0.02),
+        stations_used,
+        stations_set_aside,
+        status: if median.is_some() {
+            Status::Ok
+        } else {
+            Status::NoData
+        },
+    }
+}
+
+/// A `far_from_consensus` record for a stored reading of the station with handle `station`.
+fn far_record(station: u32, reading: &StoredReading, score: f64) -> SetAside {
+    SetAside {
+        reading_id: reading.id as u64,
+        station,
+        observed_at_ms: reading.observed_at_ms,
+        value: reading.value,
+        value_as_sent: reading.value_as_sent,
+        rule: Rule::FarFromConsensus,
+        score: Some(score),
+        threshold: Some(3.5),
+        consensus_median: Some(13.8),
+        consensus_spread: Some(0.5),
+        gap_ms: None,
+        window_readings: None,
+        station_value: reading.value,
+    }
+}
+
+fn outcome(
+    point: Point,
+    set_aside: Vec<SetAside>,
+    station_values: Vec<StationValue>,
+) -> IntervalOutcome {
+    IntervalOutcome {
+        point,
+        set_aside,
+        station_values,
+    }
+}
+
+/// One reason per record, numbered so that a test can check which reason went with which record.
+fn reasons_for(outcome: &IntervalOutcome) -> Vec<String> {
+    outcome
+        .set_aside
+        .iter()
+        .map(|record| format!("reason for reading {}", record.reading_id))
+        .collect()
+}
+
+async fn store_outcome(
+    store: &AnyStore,
+    bucket: &ClaimedBucket,
+    outcome: &IntervalOutcome,
+    station_ids: &[i64],
+    now_ms: i64,
+) -> consensor_store::StoredResult {
+    store
+        .store_result(bucket, outcome, station_ids, &reasons_for(outcome), now_ms)
+        .await
+        .expect("store result")
+}
+
+async fn claim_then_store_result_removes_the_bucket(store: &AnyStore, _database: &TestDatabase) {
+    network_of(store, 2).await;
+    // Two buckets, marked at different times: the second batch's bucket is the younger one.
+    store
+        .insert_batch(&[reading("ST-1", "air_temperature", BASE_MS, 13.0)], NOW_MS)
+        .await
+        .expect("first batch");
+    store
+        .insert_batch(
+            &[reading(
+                "ST-1",
+                "air_temperature",
+                BASE_MS + INTERVAL_MS,
+                13.5,
+            )],
+            NOW_MS + 10,
+        )
+        .await
+        .expect("second batch");
+
+    let first = store
+        .claim_buckets("w1", NOW_MS + 100, 1, STALE_MS)
+        .await
+        .expect("claim");
+    // Oldest mark first, and only as many as asked for.
+    assert_eq!(first.len(), 1);
+    let bucket = &first[0];
+    assert_eq!(bucket.area_key, "north-basin");
+    assert_eq!(bucket.quantity, "air_temperature");
+    assert_eq!(bucket.bucket_start_ms, BASE_MS);
+    assert_eq!(bucket.interval_ms, INTERVAL_MS);
+    assert_eq!(bucket.mark_count, 1);
+    assert_eq!(bucket.claimed_by, "w1");
+
+    let rest = store
+        .claim_buckets("w2", NOW_MS + 100, 10, STALE_MS)
+        .await
+        .expect("claim the rest");
+    // The first bucket's claim is fresh, so only the second bucket is left to claim.
+    assert_eq!(rest.len(), 1);
+    assert_eq!(rest[0].bucket_start_ms, BASE_MS + INTERVAL_MS);
+    assert!(store
+        .claim_buckets("w3", NOW_MS + 100, 10, STALE_MS)
+        .await
+        .expect("nothing left")
+        .is_empty());
+
+    assert_eq!(store.last_computed_at().await.expect("status"), None);
+    let ids = station_ids(store).await;
+    let decided = outcome(
+        point(Some(13.0), 1, 0),
+        Vec::new(),
+        vec![StationValue {
+            station: 0,
+            value: 13.0,
+            used: true,
+            score: None,
+        }],
+    );
+    let stored = store_outcome(store, bucket, &decided, &[ids["ST-1"]], NOW_MS + 200).await;
+    // The interval's first result is revision 1, and nothing marked the bucket since the claim.
+    assert_eq!(stored.revision, 1);
+    assert!(stored.bucket_done);
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 1);
+    assert_eq!(
+        store.last_computed_at().await.expect("status"),
+        Some(NOW_MS + 200)
+    );
+}
+
+async fn bucket_marked_again_during_computation_stays_pending(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network_of(store, 2).await;
+    store
+        .insert_batch(&[reading("ST-1", "air_temperature", BASE_MS, 13.0)], NOW_MS)
+        .await
+        .expect("batch");
+    let claimed = store
+        .claim_buckets("w1", NOW_MS, 10, STALE_MS)
+        .await
+        .expect("claim");
+    assert_eq!(claimed.len(), 1);
+    // A late reading for the same interval arrives while the worker computes it.
+    store
+        .insert_batch(
+            &[reading("ST-2", "air_temperature", BASE_MS + 60_000, 13.4)],
+            NOW_MS + 1,
+        )
+        .await
+        .expect("late reading");
+    let ids = station_ids(store).await;
+    let decided = outcome(point(Some(13.0), 1, 0), Vec::new(), Vec::new());
+    let stored = store_outcome(store, &claimed[0], &decided, &[ids["ST-1"]], NOW_MS + 2).await;
+    // The result is stored, but the bucket's mark count went from 1 to 2 meanwhile: it stays.
+    assert_eq!(stored.revision, 1);
+    assert!(!stored.bucket_done);
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 1);
+
+    // The claim was released, so it can be claimed again at once, well inside STALE_MS.
+    let again = store
+        .claim_buckets("w2", NOW_MS + 3, 10, STALE_MS)
+        .await
+        .expect("claim again");
+    assert_eq!(again.len(), 1);
+    assert_eq!(again[0].mark_count, 2);
+    let stored = store_outcome(store, &again[0], &decided, &[ids["ST-1"]], NOW_MS + 4).await;
+    // The recomputation is the interval's second revision, and this time nothing interfered.
+    assert_eq!(stored.revision, 2);
+    assert!(stored.bucket_done);
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 0);
+}
+
+async fn stale_claim_is_taken_over_and_fresh_one_is_not(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network_of(store, 1).await;
+    store
+        .insert_batch(&[reading("ST-1", "air_temperature", BASE_MS, 13.0)], NOW_MS)
+        .await
+        .expect("batch");
+    let claimed_at = NOW_MS + 1_000;
+    let first = store
+        .claim_buckets("crashed", claimed_at, 10, STALE_MS)
+        .await
+        .expect("claim");
+    assert_eq!(first.len(), 1);
+    // A claim is stale when it is older than STALE_MS. At exactly STALE_MS it is not yet.
+    for now_ms in [claimed_at + 1, claimed_at + STALE_MS] {
+        let taken = store
+            .claim_buckets("rescuer", now_ms, 10, STALE_MS)
+            .await
+            .expect("claim");
+        assert!(taken.is_empty(), "claim taken over at {now_ms}");
+    }
+    let taken = store
+        .claim_buckets("rescuer", claimed_at + STALE_MS + 1, 10, STALE_MS)
+        .await
+        .expect("claim");
+    assert_eq!(taken.len(), 1);
+    assert_eq!(taken[0].claimed_by, "rescuer");
+    assert_eq!(taken[0].bucket_start_ms, BASE_MS);
+    let claims = fetch_all_raw!(
+        store,
+        (Option<String>, Option<i64>),
+        "SELECT claimed_by, claimed_at_ms FROM pending_buckets"
+    );
+    // The takeover rewrote the claim, which starts a new staleness period.
+    assert_eq!(
+        claims,
+        vec![(Some("rescuer".to_owned()), Some(claimed_at + STALE_MS + 1))]
+    );
+}
+
+async fn concurrent_claimers_never_share_a_bucket(_store: &AnyStore, database: &TestDatabase) {
+    // Two separate stores (two pools) on the same database, as two replica processes would be.
+    let first = database.open().await;
+    let second = database.open().await;
+    network_of(&first, 1).await;
+    // One reading in each of 200 consecutive intervals: 200 pending buckets.
+    let batch: Vec<NewReading> = (0..200)
+        .map(|index| {
+            reading(
+                "ST-1",
+                "air_temperature",
+                BASE_MS + index * INTERVAL_MS,
+                13.0,
+            )
+        })
+        .collect();
+    first.insert_batch(&batch, NOW_MS).await.expect("batch");
+
+    let claimer = |store: AnyStore, worker: &'static str| {
+        tokio::spawn(async move {
+            let mut mine = Vec::new();
+            loop {
+                let claimed = store
+                    .claim_buckets(worker, NOW_MS + 1, 7, STALE_MS)
+                    .await
+                    .expect("claim");
+                if claimed.is_empty() {
+                    return mine;
+                }
+                mine.extend(claimed.into_iter().map(|bucket| bucket.bucket_start_ms));
+            }
+        })
+    };
+    let a = claimer(first.clone(), "a");
+    let b = claimer(second.clone(), "b");
+    let a = a.await.expect("task a");
+    let b = b.await.expect("task b");
+    let a_set: BTreeSet<i64> = a.iter().copied().collect();
+    let b_set: BTreeSet<i64> = b.iter().copied().collect();
+    // No claimer got a bucket twice, no bucket went to both, and together they got all 200.
+    assert_eq!(a_set.len(), a.len());
+    assert_eq!(b_set.len(), b.len());
+    assert!(
+        a_set.is_disjoint(&b_set),
+        "{:?}",
+        a_set.intersection(&b_set)
+    );
+    let all: BTreeSet<i64> = a_set.union(&b_set).copied().collect();
+    let expected: BTreeSet<i64> = (0..200)
+        .map(|index| BASE_MS + index * INTERVAL_MS)
+        .collect();
+    assert_eq!(all, expected);
+    // Each claim row names the worker that returned it.
+    let by_worker = fetch_all_raw!(
+        &first,
+        (String, i64),
+        "SELECT claimed_by, COUNT(*) FROM pending_buckets GROUP BY claimed_by ORDER BY claimed_by"
+    );
+    let counts: Vec<(String, i64)> = [("a", a.len()), ("b", b.len())]
+        .into_iter()
+        .filter(|(_, count)| *count > 0)
+        .map(|(worker, count)| (worker.to_owned(), count as i64))
+        .collect();
+    assert_eq!(by_worker, counts);
+    first.close().await;
+    second.close().await;
+}
+
+async fn load_interval_returns_current_readings_by_station(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network_of(store, 2).await;
+    store
+        .upsert_area(&NewArea {
+            key: "south".to_owned(),
+            name: "South".to_owned(),
+            interval_ms: INTERVAL_MS,
+        })
+        .await
+        .expect("area");
+    store
+        .upsert_station(&station("ST-9", "south"))
+        .await
+        .expect("station");
+    let batch = vec![
+        // Inserted out of station order: the result is ordered by station key, then time.
+        reading("ST-2", "air_temperature", BASE_MS + 60_000, 14.0),
+        reading("ST-2", "air_temperature", BASE_MS, 13.9),
+        reading("ST-1", "air_temperature", BASE_MS, 13.0),
+        NewReading {
+            value: None,
+            value_as_sent: None,
+            unit_as_sent: None,
+            ..reading("ST-1", "air_temperature", BASE_MS + 60_000, 0.0)
+        },
+        // Outside the range ([BASE_MS, BASE_MS + 10 min)), another quantity, another area.
+        reading("ST-1", "air_temperature", BASE_MS + INTERVAL_MS, 13.0),
+        reading("ST-1", "air_temperature", BASE_MS - 1, 13.0),
+        reading("ST-1", "relative_humidity", BASE_MS, 80.0),
+        reading("ST-9", "air_temperature", BASE_MS, 25.0),
+    ];
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    // A corrected value for ST-2 at BASE_MS: only the new revision is current.
+    store
+        .insert_batch(
+            &[NewReading {
+                value_as_sent: Some(57.2),
+                unit_as_sent: Some("[degF]".to_owned()),
+                ..reading("ST-2", "air_temperature", BASE_MS, 14.0)
+            }],
+            NOW_MS + 1,
+        )
+        .await
+        .expect("revision");
+    let area_id = store.list_areas().await.expect("areas")[0].id;
+    let data = store
+        .load_interval(area_id, "air_temperature", BASE_MS, BASE_MS + INTERVAL_MS)
+        .await
+        .expect("load");
+    let ids = station_ids(store).await;
+    /// A station's key and id with its readings' (time, value, value as sent).
+    type StationSummary = (String, i64, Vec<(i64, Option<f64>, Option<f64>)>);
+    let summary: Vec<StationSummary> = data
+        .stations
+        .iter()
+        .map(|series| {
+            (
+                series.station_key.clone(),
+                series.station_id,
+                series
+                    .readings
+                    .iter()
+                    .map(|r| (r.observed_at_ms, r.value, r.value_as_sent))
+                    .collect(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        summary,
+        vec![
+            (
+                "ST-1".to_owned(),
+                ids["ST-1"],
+                vec![
+                    (BASE_MS, Some(13.0), Some(13.0)),
+                    (BASE_MS + 60_000, None, None)
+                ]
+            ),
+            (
+                "ST-2".to_owned(),
+                ids["ST-2"],
+                vec![
+                    (BASE_MS, Some(14.0), Some(57.2)),
+                    (BASE_MS + 60_000, Some(14.0), Some(14.0))
+                ]
+            ),
+        ]
+    );
+    // The reading ids handed to the core are the current revisions' row ids.
+    let current = stored(store, "ST-2", "air_temperature", BASE_MS).await;
+    assert_eq!(current.revision, 1);
+    assert_eq!(data.stations[1].readings[0].id, current.id as u64);
+    assert!(data.overturned.is_empty());
+    // A quantity nobody sent has no readings.
+    let none = store
+        .load_interval(area_id, "pm10", BASE_MS, BASE_MS + INTERVAL_MS)
+        .await
+        .expect("load");
+    assert!(none.stations.is_empty());
+}
+
+async fn result_revisions_grow_and_earlier_ones_stay_readable(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network_of(store, 1).await;
+    store
+        .insert_batch(&[reading("ST-1", "air_temperature", BASE_MS, 13.0)], NOW_MS)
+        .await
+        .expect("batch");
+    let bucket = store
+        .claim_buckets("w", NOW_MS, 1, STALE_MS)
+        .await
+        .expect("claim")
+        .remove(0);
+    let ids = station_ids(store).await;
+    // Three computations of the same interval, each with a different median.
+    for (index, median) in [13.0, 13.5, 14.0].into_iter().enumerate() {
+        let decided = outcome(point(Some(median), 1, 0), Vec::new(), Vec::new());
+        let stored = store_outcome(
+            store,
+            &bucket,
+            &decided,
+            &[ids["ST-1"]],
+            NOW_MS + index as i64,
+        )
+        .await;
+        assert_eq!(stored.revision, index as i64 + 1);
+    }
+    let latest = store
+        .result_revision("north-basin", "air_temperature", BASE_MS, None)
+        .await
+        .expect("latest revision")
+        .expect("present");
+    assert_eq!(latest.revision, 3);
+    assert_eq!(latest.point.median, Some(14.0));
+    for (revision, median, computed_at_ms) in [(1, 13.0, NOW_MS), (2, 13.5, NOW_MS + 1)] {
+        let earlier = store
+            .result_revision("north-basin", "air_temperature", BASE_MS, Some(revision))
+            .await
+            .expect("earlier revision")
+            .expect("present");
+        // Each earlier revision keeps its own median and computation time.
+        assert_eq!(earlier.revision, revision);
+        assert_eq!(earlier.point.median, Some(median));
+        assert_eq!(earlier.computed_at_ms, computed_at_ms);
+    }
+    assert!(store
+        .result_revision("north-basin", "air_temperature", BASE_MS, Some(4))
+        .await
+        .expect("no fourth revision")
+        .is_none());
+    // The schema itself refuses to change a stored result.
+    let change = match store {
+        AnyStore::Sqlite(sqlite) => sqlx::query("UPDATE interval_results SET median = 0")
+            .execute(sqlite.pool())
+            .await
+            .map(|_| ()),
+        AnyStore::Postgres(postgres) => sqlx::query("UPDATE interval_results SET median = 0")
+            .execute(postgres.pool())
+            .await
+            .map(|_| ()),
+    };
+    let error = change.expect_err("results are append-only");
+    assert!(error.to_string().contains("append-only"), "{error}");
+}
+
+async fn series_latest_and_result_revision(store: &AnyStore, _database: &TestDatabase) {
+    network_of(store, 1).await;
+    let batch: Vec<NewReading> = (0..3)
+        .map(|index| {
+            reading(
+                "ST-1",
+                "air_temperature",
+                BASE_MS + index * INTERVAL_MS,
+                13.0,
+            )
+        })
+        .collect();
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    let buckets = claim_all(store, NOW_MS).await;
+    let ids = [station_ids(store).await["ST-1"]];
+    // Interval k gets median 10 + k; interval 1 is then recomputed with median 21.
+    for index in 0..3 {
+        let bucket = &buckets[&(
+            "north-basin".to_owned(),
+            "air_temperature".to_owned(),
+            BASE_MS + index * INTERVAL_MS,
+        )];
+        let decided = outcome(
+            point(Some(10.0 + index as f64), 1, 0),
+            Vec::new(),
+            Vec::new(),
+        );
+        store_outcome(store, bucket, &decided, &ids, NOW_MS).await;
+    }
+    let second = &buckets[&(
+        "north-basin".to_owned(),
+        "air_temperature".to_owned(),
+        BASE_MS + INTERVAL_MS,
+    )];
+    let redone = outcome(point(Some(21.0), 1, 0), Vec::new(), Vec::new());
+    store_outcome(store, second, &redone, &ids, NOW_MS + 5).await;
+
+    // [BASE, BASE + 2 intervals) holds the first two starts; `to` is exclusive.
+    let series = store
+        .series(
+            "north-basin",
+            "air_temperature",
+            BASE_MS,
+            BASE_MS + 2 * INTERVAL_MS,
+        )
+        .await
+        .expect("series");
+    let summary: Vec<(i64, i64, Option<f64>)> = series
+        .iter()
+        .map(|row| (row.start_ms, row.revision, row.point.median))
+        .collect();
+    assert_eq!(
+        summary,
+        vec![
+            (BASE_MS, 1, Some(10.0)),
+            (BASE_MS + INTERVAL_MS, 2, Some(21.0))
+        ]
+    );
+    // Every Point field survives the round trip.
+    assert_eq!(series[0].point, point(Some(10.0), 1, 0));
+    assert_eq!(series[0].interval_ms, INTERVAL_MS);
+
+    let latest = store
+        .latest("north-basin", "air_temperature")
+        .await
+        .expect("latest")
+        .expect("present");
+    // The newest interval start with a result is the third one, computed once.
+    assert_eq!(
+        (latest.start_ms, latest.revision, latest.point.median),
+        (BASE_MS + 2 * INTERVAL_MS, 1, Some(12.0))
+    );
+    let one = store
+        .result_revision(
+            "north-basin",
+            "air_temperature",
+            BASE_MS + INTERVAL_MS,
+            Some(1),
+        )
+        .await
+        .expect("revision 1")
+        .expect("present");
+    assert_eq!(one.point.median, Some(11.0));
+    // Unknown area or quantity: nothing, not an error.
+    assert!(store
+        .series("south", "air_temperature", BASE_MS, BASE_MS + INTERVAL_MS)
+        .await
+        .expect("series")
+        .is_empty());
+    assert!(store
+        .latest("north-basin", "dew_point")
+        .await
+        .expect("latest")
+        .is_none());
+}
+
+/// The set-aside listing's fixture: area north-basin (ST-1, ST-2) and area south (ST-3), readings
+/// of two quantities, and results that set some of them aside. Returns the ids of the readings that
+/// the latest revisions set aside, in listing order (observed_at_ms, reading_id).
+async fn set_aside_fixture(store: &AnyStore) -> Vec<i64> {
+    network_of(store, 2).await;
+    store
+        .upsert_area(&NewArea {
+            key: "south".to_owned(),
+            name: "South".to_owned(),
+            interval_ms: INTERVAL_MS,
+        })
+        .await
+        .expect("area");
+    store
+        .upsert_station(&station("ST-3", "south"))
+        .await
+        .expect("station");
+    let mut batch = Vec::new();
+    for minute in 0..5 {
+        batch.push(reading(
+            "ST-1",
+            "air_temperature",
+            BASE_MS + minute * 60_000,
+            30.0,
+        ));
+    }
+    batch.push(reading("ST-2", "air_temperature", BASE_MS, 13.0));
+    batch.push(reading("ST-2", "relative_humidity", BASE_MS + 60_000, 80.0));
+    batch.push(reading("ST-3", "air_temperature", BASE_MS + 120_000, 31.0));
+    batch.push(reading(
+        "ST-1",
+        "air_temperature",
+        BASE_MS + INTERVAL_MS,
+        30.0,
+    ));
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    let buckets = claim_all(store, NOW_MS).await;
+    let ids = station_ids(store).await;
+    let handles = [ids["ST-1"], ids["ST-2"], ids["ST-3"]];
+    let bucket = |area: &str, quantity: &str, start: i64| {
+        buckets[&(area.to_owned(), quantity.to_owned(), start)].clone()
+    };
+
+    let mut st1 = Vec::new();
+    for minute in 0..5 {
+        st1.push(stored(store, "ST-1", "air_temperature", BASE_MS + minute * 60_000).await);
+    }
+    let st2_air = stored(store, "ST-2", "air_temperature", BASE_MS).await;
+    let st2_rh = stored(store, "ST-2", "relative_humidity", BASE_MS + 60_000).await;
+    let st3 = stored(store, "ST-3", "air_temperature", BASE_MS + 120_000).await;
+    let st1_later = stored(store, "ST-1", "air_temperature", BASE_MS + INTERVAL_MS).await;
+
+    // north-basin, air temperature, first interval. Revision 1 sets aside ST-1's five readings and
+    // ST-2's; revision 2 only ST-1's, so ST-2's record belongs to a superseded revision.
+    let air = bucket("north-basin", "air_temperature", BASE_MS);
+    let mut records: Vec<SetAside> = st1.iter().map(|r| far_record(0, r, 33.7)).collect();
+    records.push(far_record(1, &st2_air, -4.0));
+    store_outcome(
+        store,
+        &air,
+        &outcome(point(Some(13.8), 0, 2), records, Vec::new()),
+        &handles,
+        NOW_MS,
+    )
+    .await;
+    let records: Vec<SetAside> = st1.iter().map(|r| far_record(0, r, 33.7)).collect();
+    store_outcome(
+        store,
+        &air,
+        &outcome(point(Some(13.8), 1, 1), records, Vec::new()),
+        &handles,
+        NOW_MS + 1,
+    )
+    .await;
+    // The other intervals: one record each.
+    let rh = bucket("north-basin", "relative_humidity", BASE_MS);
+    store_outcome(
+        store,
+        &rh,
+        &outcome(
+            point(None, 0, 1),
+            vec![far_record(1, &st2_rh, 5.0)],
+            Vec::new(),
+        ),
+        &handles,
+        NOW_MS,
+    )
+    .await;
+    let south = bucket("south", "air_temperature", BASE_MS);
+    store_outcome(
+        store,
+        &south,
+        &outcome(
+            point(None, 0, 1),
+            vec![far_record(2, &st3, 6.0)],
+            Vec::new(),
+        ),
+        &handles,
+        NOW_MS,
+    )
+    .await;
+    let later = bucket("north-basin", "air_temperature", BASE_MS + INTERVAL_MS);
+    store_outcome(
+        store,
+        &later,
+        &outcome(
+            point(None, 0, 1),
+            vec![far_record(0, &st1_later, 7.0)],
+            Vec::new(),
+        ),
+        &handles,
+        NOW_MS,
+    )
+    .await;
+
+    // Listing order is by observation time: ST-1 minute 0, ST-1 minute 1, ST-2 rh minute 1 (its
+    // id is larger, having been inserted later in the batch), ST-1 minute 2, ST-3 minute 2, ST-1
+    // minutes 3 and 4, then ST-1 in the next interval.
+    vec![
+        st1[0].id,
+        st1[1].id,
+        st2_rh.id,
+        st1[2].id,
+        st3.id,
+        st1[3].id,
+        st1[4].id,
+        st1_later.id,
+    ]
+}
+
+/// Lists every page with the given page size and returns all rows, checking that only the last
+/// page has no next cursor.
+async fn list_all(store: &AnyStore, filter: &SetAsideFilter, page_size: usize) -> Vec<SetAsideRow> {
+    let mut rows = Vec::new();
+    let mut after: Option<SetAsideCursor> = None;
+    loop {
+        let page = store
+            .list_set_aside(filter, page_size, after)
+            .await
+            .expect("list");
+        assert!(page.items.len() <= page_size);
+        rows.extend(page.items);
+        match page.next_cursor {
+            // The cursor goes through its text form, as it does through the HTTP API.
+            Some(cursor) => after = Some(cursor.to_string().parse().expect("cursor")),
+            None => return rows,
+        }
+    }
+}
+
+fn reading_ids(rows: &[SetAsideRow]) -> Vec<i64> {
+    rows.iter().map(|row| row.reading_id).collect()
+}
+
+async fn set_aside_listing_filters_and_pages(store: &AnyStore, _database: &TestDatabase) {
+    let expected = set_aside_fixture(store).await;
+    let everything = SetAsideFilter::default();
+    let all = list_all(store, &everything, 100).await;
+    // The superseded revision-1 record of ST-2's air temperature is not listed.
+    assert_eq!(reading_ids(&all), expected);
+    let first = &all[0];
+    assert_eq!(
+        (
+            first.station.as_str(),
+            first.area.as_str(),
+            first.quantity.as_str()
+        ),
+        ("ST-1", "north-basin", "air_temperature")
+    );
+    assert_eq!(first.rule, Rule::FarFromConsensus);
+    assert_eq!(first.value, Some(30.0));
+    assert_eq!(first.unit_as_sent.as_deref(), Some("Cel"));
+    assert_eq!(first.observed_at_ms, BASE_MS);
+    assert_eq!(first.score, Some(33.7));
+    assert_eq!(first.threshold, Some(3.5));
+    assert_eq!(first.consensus_median, Some(13.8));
+    assert_eq!(
+        first.reason,
+        format!("reason for reading {}", first.reading_id)
+    );
+    assert_eq!(first.result_revision, 2);
+    assert_eq!(first.bucket_start_ms, BASE_MS);
+    assert_eq!(first.review.state, ReviewState::Pending);
+    assert_eq!(first.review.by, None);
+
+    // Pages of 3 over 8 rows: 3 + 3 + 2, the same rows in the same order.
+    assert_eq!(
+        reading_ids(&list_all(store, &everything, 3).await),
+        expected
+    );
+    assert_eq!(
+        reading_ids(&list_all(store, &everything, 1).await),
+        expected
+    );
+    let first_page = store
+        .list_set_aside(&everything, 3, None)
+        .await
+        .expect("page");
+    assert_eq!(reading_ids(&first_page.items), expected[..3].to_vec());
+    assert!(first_page.next_cursor.is_some());
+    let exact = store
+        .list_set_aside(&everything, 8, None)
+        .await
+        .expect("page");
+    // Exactly as many rows as asked for, and none beyond: no next page.
+    assert_eq!(exact.items.len(), 8);
+    assert_eq!(exact.next_cursor, None);
+
+    let filtered =
+        |filter: SetAsideFilter| async move { reading_ids(&list_all(store, &filter, 2).await) };
+    let area = filtered(SetAsideFilter {
+        area: Some("south".to_owned()),
+        ..SetAsideFilter::default()
+    })
+    .await;
+    assert_eq!(area, vec![expected[4]]);
+    let station = filtered(SetAsideFilter {
+        station: Some("ST-1".to_owned()),
+        ..SetAsideFilter::default()
+    })
+    .await;
+    assert_eq!(
+        station,
+        vec![
+            expected[0],
+            expected[1],
+            expected[3],
+            expected[5],
+            expected[6],
+            expected[7]
+        ]
+    );
+    let quantity = filtered(SetAsideFilter {
+        quantity: Some("relative_humidity".to_owned()),
+        ..SetAsideFilter::default()
+    })
+    .await;
+    assert_eq!(quantity, vec![expected[2]]);
+    // [minute 1, minute 3): the three readings observed at minutes 1 and 2 and nothing else.
+    let window = filtered(SetAsideFilter {
+        from_ms: Some(BASE_MS + 60_000),
+        to_ms: Some(BASE_MS + 180_000),
+        ..SetAsideFilter::default()
+    })
+    .await;
+    assert_eq!(window, expected[1..5].to_vec());
+    let combined = filtered(SetAsideFilter {
+        area: Some("north-basin".to_owned()),
+        quantity: Some("air_temperature".to_owned()),
+        from_ms: Some(BASE_MS + 60_000),
+        to_ms: Some(BASE_MS + 180_000),
+        ..SetAsideFilter::default()
+    })
+    .await;
+    assert_eq!(combined, vec![expected[1], expected[3]]);
+
+    // Review filters: uphold one reading, overturn another; the rest stay pending.
+    store
+        .review_reading(
+            expected[0],
+            ReviewDecision::Uphold,
+            Some("sensor in the sun"),
+            "tok_op",
+            NOW_MS + 10,
+        )
+        .await
+        .expect("uphold");
+    store
+        .review_reading(
+            expected[4],
+            ReviewDecision::Overturn,
+            None,
+            "tok_op",
+            NOW_MS + 11,
+        )
+        .await
+        .expect("overturn");
+    let by_review = |state: ReviewState| {
+        filtered(SetAsideFilter {
+            review: Some(state),
+            ..SetAsideFilter::default()
+        })
+    };
+    assert_eq!(by_review(ReviewState::Upheld).await, vec![expected[0]]);
+    assert_eq!(by_review(ReviewState::Overturned).await, vec![expected[4]]);
+    let pending: Vec<i64> = expected
+        .iter()
+        .copied()
+        .filter(|id| *id != expected[0] && *id != expected[4])
+        .collect();
+    assert_eq!(by_review(ReviewState::Pending).await, pending);
+    let upheld = list_all(store, &everything, 100).await;
+    let review = &upheld[0].review;
+    assert_eq!(review.state, ReviewState::Upheld);
+    assert_eq!(review.by.as_deref(), Some("tok_op"));
+    assert_eq!(review.at_ms, Some(NOW_MS + 10));
+    assert_eq!(review.note.as_deref(), Some("sensor in the sun"));
+}
+
+async fn reviews_are_audited_and_mark_the_interval_again(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    let expected = set_aside_fixture(store).await;
+    // The fixture stored every result, so nothing is pending before the reviews.
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 0);
+    // A reading that no result ever judged cannot be reviewed.
+    store
+        .insert_batch(&[reading("ST-2", "dew_point", BASE_MS, 5.0)], NOW_MS)
+        .await
+        .expect("unjudged reading");
+    let never = stored(store, "ST-2", "dew_point", BASE_MS).await;
+    let error = store
+        .review_reading(never.id, ReviewDecision::Uphold, None, "tok_op", NOW_MS)
+        .await
+        .expect_err("never set aside");
+    assert!(matches!(error, StoreError::NotFound(_)), "{error:?}");
+    let dew_bucket = claim_all(store, NOW_MS).await;
+    assert_eq!(
+        dew_bucket.len(),
+        1,
+        "only the dew point reading's bucket is pending"
+    );
+
+    // ST-3 in the south area, air temperature, first interval (see set_aside_fixture).
+    let target = expected[4];
+    let upheld = store
+        .review_reading(
+            target,
+            ReviewDecision::Uphold,
+            Some("looks wrong"),
+            "tok_a",
+            NOW_MS + 10,
+        )
+        .await
+        .expect("uphold");
+    assert_eq!(upheld.reading_id, target);
+    assert_eq!(upheld.station, "ST-3");
+    assert_eq!(upheld.quantity, "air_temperature");
+    assert_eq!(upheld.observed_at_ms, BASE_MS + 120_000);
+    assert_eq!(upheld.decision, ReviewDecision::Uphold);
+    // The review marked the reading's interval pending again, in the same transaction.
+    let marked = claim_all(store, NOW_MS + 11).await;
+    let south = marked
+        .get(&("south".to_owned(), "air_temperature".to_owned(), BASE_MS))
+        .expect("south interval pending again")
+        .clone();
+    assert_eq!(marked.len(), 1);
+
+    let overturned = store
+        .review_reading(
+            target,
+            ReviewDecision::Overturn,
+            Some("checked on site"),
+            "tok_b",
+            NOW_MS + 20,
+        )
+        .await
+        .expect("overturn");
+    let area_id = store
+        .list_areas()
+        .await
+        .expect("areas")
+        .into_iter()
+        .find(|area| area.key == "south")
+        .expect("south")
+        .id;
+    let data = store
+        .load_interval(area_id, "air_temperature", BASE_MS, BASE_MS + INTERVAL_MS)
+        .await
+        .expect("load");
+    // The latest decision on the reading is the overturn, so the worker must keep it.
+    assert_eq!(data.overturned, [target as u64].into_iter().collect());
+
+    // The worker recomputes the interval and, keeping the reading, sets nothing aside.
+    let ids = station_ids(store).await;
+    let recomputed = outcome(
+        point(Some(31.0), 1, 0),
+        Vec::new(),
+        vec![StationValue {
+            station: 0,
+            value: 31.0,
+            used: true,
+            score: None,
+        }],
+    );
+    let stored_result =
+        store_outcome(store, &south, &recomputed, &[ids["ST-3"]], NOW_MS + 30).await;
+    assert_eq!(stored_result.revision, 2);
+    // Its latest revision no longer sets it aside, but an overturned reading stays findable.
+    let overturned_rows = list_all(
+        store,
+        &SetAsideFilter {
+            review: Some(ReviewState::Overturned),
+            ..SetAsideFilter::default()
+        },
+        10,
+    )
+    .await;
+    assert_eq!(reading_ids(&overturned_rows), vec![target]);
+    assert_eq!(overturned_rows[0].result_revision, 1);
+    assert_eq!(overturned_rows[0].review.by.as_deref(), Some("tok_b"));
+
+    // The audit log keeps both decisions, newest first.
+    let log = store
+        .audit(&AuditFilter::default(), 10, None)
+        .await
+        .expect("audit");
+    let decisions: Vec<(i64, ReviewDecision, String)> = log
+        .items
+        .iter()
+        .map(|entry| (entry.reading_id, entry.decision, entry.by.clone()))
+        .collect();
+    assert_eq!(
+        decisions,
+        vec![
+            (target, ReviewDecision::Overturn, "tok_b".to_owned()),
+            (target, ReviewDecision::Uphold, "tok_a".to_owned()),
+        ]
+    );
+    assert_eq!(log.items[0].id, overturned.id);
+    assert_eq!(log.items[1].note.as_deref(), Some("looks wrong"));
+    assert_eq!(log.next_cursor, None);
+    // One entry per page: the cursor walks from the newest to the oldest.
+    let page = store
+        .audit(&AuditFilter::default(), 1, None)
+        .await
+        .expect("page 1");
+    assert_eq!(page.items[0].id, overturned.id);
+    let page = store
+        .audit(&AuditFilter::default(), 1, page.next_cursor)
+        .await
+        .expect("page 2");
+    assert_eq!(page.items[0].id, upheld.id);
+    assert_eq!(page.next_cursor, None);
+    // Filters: by reading, by station, by time of the decision ([at 15, ...) holds only the second).
+    let only = |filter: AuditFilter| async move {
+        store
+            .audit(&filter, 10, None)
+            .await
+            .expect("audit")
+            .items
+            .iter()
+            .map(|entry| entry.id)
+            .collect::<Vec<i64>>()
+    };
+    assert_eq!(
+        only(AuditFilter {
+            reading_id: Some(target),
+            ..AuditFilter::default()
+        })
+        .await,
+        vec![overturned.id, upheld.id]
+    );
+    assert!(only(AuditFilter {
+        station: Some("ST-1".to_owned()),
+        ..AuditFilter::default()
+    })
+    .await
+    .is_empty());
+    assert_eq!(
+        only(AuditFilter {
+            from_ms: Some(NOW_MS + 15),
+            ..AuditFilter::default()
+        })
+        .await,
+        vec![overturned.id]
+    );
+    assert_eq!(
+        only(AuditFilter {
+            to_ms: Some(NOW_MS + 20),
+            ..AuditFilter::default()
+        })
+        .await,
+        vec![upheld.id]
+    );
+}
+
+async fn mark_for_recompute_counts_intervals_with_readings(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network_of(store, 2).await;
+    let batch = vec![
+        // Air temperature in intervals 0, 1 and 3 (two stations in interval 0); humidity in 0.
+        reading("ST-1", "air_temperature", BASE_MS, 13.0),
+        reading("ST-2", "air_temperature", BASE_MS + 30_000, 13.0),
+        reading("ST-1", "air_temperature", BASE_MS + INTERVAL_MS + 1, 13.0),
+        reading("ST-1", "air_temperature", BASE_MS + 3 * INTERVAL_MS, 13.0),
+        reading("ST-1", "relative_humidity", BASE_MS, 80.0),
+    ];
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    // Compute everything first, so that each recompute request shows in the pending count.
+    let buckets = claim_all(store, NOW_MS).await;
+    let ids = station_ids(store).await;
+    for bucket in buckets.values() {
+        let decided = outcome(point(Some(13.0), 1, 0), Vec::new(), Vec::new());
+        store_outcome(store, bucket, &decided, &[ids["ST-1"]], NOW_MS).await;
+    }
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 0);
+
+    let end = BASE_MS + 4 * INTERVAL_MS;
+    let air = store
+        .mark_for_recompute(
+            "north-basin",
+            Some("air_temperature"),
+            BASE_MS,
+            end,
+            NOW_MS + 1,
+        )
+        .await
+        .expect("recompute air");
+    // Intervals 0, 1 and 3 hold air temperature readings; interval 2 holds none.
+    assert_eq!(air, 3);
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 3);
+    let all = store
+        .mark_for_recompute("north-basin", None, BASE_MS, end, NOW_MS + 2)
+        .await
+        .expect("recompute all");
+    // All quantities: the three air temperature intervals again plus humidity's one.
+    assert_eq!(all, 4);
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 4);
+    let counts = fetch_all_raw!(
+        store,
+        (i64, i64, i64),
+        "SELECT bucket_start_ms, mark_count, marked_at_ms FROM pending_buckets p \
+         JOIN quantities q ON q.id = p.quantity_id WHERE q.key = 'air_temperature' \
+         ORDER BY bucket_start_ms"
+    );
+    // Each air temperature interval was marked by both requests: once new, then counted up.
+    assert_eq!(
+        counts,
+        vec![
+            (BASE_MS, 2, NOW_MS + 2),
+            (BASE_MS + INTERVAL_MS, 2, NOW_MS + 2),
+            (BASE_MS + 3 * INTERVAL_MS, 2, NOW_MS + 2),
+        ]
+    );
+    // The range is on interval starts: [BASE + 1 ms, BASE + interval + 1 ms) contains only the
+    // start of interval 1, although it overlaps interval 0's readings.
+    let narrow = store
+        .mark_for_recompute(
+            "north-basin",
+            Some("air_temperature"),
+            BASE_MS + 1,
+            BASE_MS + INTERVAL_MS + 1,
+            NOW_MS + 3,
+        )
+        .await
+        .expect("narrow");
+    assert_eq!(narrow, 1);
+    // An empty range, or a quantity without readings, marks nothing.
+    let empty = store
+        .mark_for_recompute("north-basin", None, BASE_MS + 1, BASE_MS + 2, NOW_MS)
+        .await
+        .expect("empty range");
+    assert_eq!(empty, 0);
+    let unknown_quantity = store
+        .mark_for_recompute("north-basin", Some("pm10"), BASE_MS, end, NOW_MS)
+        .await
+        .expect("no such readings");
+    assert_eq!(unknown_quantity, 0);
+    let error = store
+        .mark_for_recompute("nowhere", None, BASE_MS, end, NOW_MS)
+        .await
+        .expect_err("unknown area");
+    assert!(matches!(error, StoreError::NotFound(_)), "{error:?}");
+}
+
+async fn station_health_figures(store: &AnyStore, _database: &TestDatabase) {
+    network_of(store, 2).await;
+    // ST-1 reports in intervals 0, 1 and 2; ST-2 only in interval 0 and (revised) interval 1.
+    let mut batch = Vec::new();
+    for index in 0..3 {
+        batch.push(reading(
+            "ST-1",
+            "air_temperature",
+            BASE_MS + index * INTERVAL_MS,
+            14.0,
+        ));
+        batch.push(reading(
+            "ST-1",
+            "air_temperature",
+            BASE_MS + index * INTERVAL_MS + 60_000,
+            14.2,
+        ));
+    }
+    batch.push(reading("ST-2", "air_temperature", BASE_MS, 13.0));
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    // A revised value adds a row but not a reading: counts are of current readings.
+    store
+        .insert_batch(
+            &[reading("ST-1", "air_temperature", BASE_MS, 14.1)],
+            NOW_MS + 1,
+        )
+        .await
+        .expect("revision");
+    let buckets = claim_all(store, NOW_MS + 2).await;
+    let ids = station_ids(store).await;
+    let handles = [ids["ST-1"], ids["ST-2"]];
+    let key = |index: i64| {
+        (
+            "north-basin".to_owned(),
+            "air_temperature".to_owned(),
+            BASE_MS + index * INTERVAL_MS,
+        )
+    };
+    let value = |station: u32, value: f64, used: bool| StationValue {
+        station,
+        value,
+        used,
+        score: None,
+    };
+    // Interval 0: both stations used, area median 13.6; ST-1's second reading set aside.
+    let set_aside_reading = stored(store, "ST-1", "air_temperature", BASE_MS + 60_000).await;
+    store_outcome(
+        store,
+        &buckets[&key(0)],
+        &outcome(
+            point(Some(13.6), 2, 0),
+            vec![far_record(0, &set_aside_reading, 4.0)],
+            vec![value(0, 14.1, true), value(1, 13.0, true)],
+        ),
+        &handles,
+        NOW_MS,
+    )
+    .await;
+    // Interval 1: revision 1 says ST-1 = 14.0 against 13.0; revision 2 (the one that counts) says
+    // ST-1 = 14.1, set aside as far from the area median 13.5.
+    for (station_value, median) in [(14.0, 13.0), (14.1, 13.5)] {
+        store_outcome(
+            store,
+            &buckets[&key(1)],
+            &outcome(
+                point(Some(median), 1, 1),
+                Vec::new(),
+                vec![value(0, station_value, false), value(1, 13.5, true)],
+            ),
+            &handles,
+            NOW_MS,
+        )
+        .await;
+    }
+    // Interval 2: no area median (no station kept), so no residual.
+    store_outcome(
+        store,
+        &buckets[&key(2)],
+        &outcome(point(None, 0, 1), Vec::new(), vec![value(0, 14.1, false)]),
+        &handles,
+        NOW_MS,
+    )
+    .await;
+
+    let residuals = store
+        .station_residuals(
+            "ST-1",
+            "air_temperature",
+            BASE_MS,
+            BASE_MS + 3 * INTERVAL_MS,
+        )
+        .await
+        .expect("residuals");
+    let summary: Vec<(i64, f64, f64, bool)> = residuals
+        .iter()
+        .map(|r| (r.bucket_start_ms, r.station_value, r.area_median, r.used))
+        .collect();
+    assert_eq!(
+        summary,
+        vec![
+            (BASE_MS, 14.1, 13.6, true),
+            (BASE_MS + INTERVAL_MS, 14.1, 13.5, false)
+        ]
+    );
+    // ST-2 had a value in intervals 0 and 1 only.
+    let st2 = store
+        .station_residuals(
+            "ST-2",
+            "air_temperature",
+            BASE_MS,
+            BASE_MS + 3 * INTERVAL_MS,
+        )
+        .await
+        .expect("residuals");
+    assert_eq!(st2.len(), 2);
+
+    let counts = store
+        .station_reading_counts(
+            "ST-1",
+            "air_temperature",
+            BASE_MS,
+            BASE_MS + 3 * INTERVAL_MS,
+        )
+        .await
+        .expect("counts");
+    // Six current readings (the revision replaced one, it did not add one), one set aside.
+    assert_eq!((counts.readings, counts.set_aside), (6, 1));
+    let narrow = store
+        .station_reading_counts(
+            "ST-1",
+            "air_temperature",
+            BASE_MS + INTERVAL_MS,
+            BASE_MS + 3 * INTERVAL_MS,
+        )
+        .await
+        .expect("counts");
+    assert_eq!((narrow.readings, narrow.set_aside), (4, 0));
+
+    // ST-1's newest observation is interval 2's second reading; ST-9 does not exist.
+    assert_eq!(
+        store.last_seen("ST-1").await.expect("last seen"),
+        Some(BASE_MS + 2 * INTERVAL_MS + 60_000)
+    );
+    assert_eq!(
+        store.last_seen("ST-2").await.expect("last seen"),
+        Some(BASE_MS)
+    );
+    assert_eq!(store.last_seen("ST-9").await.expect("last seen"), None);
+}
+
+async fn real_interval_decision_round_trip(store: &AnyStore, _database: &TestDatabase) {
+    // The whole path the worker takes, with the real core deciding: four stations report air
+    // temperature every minute for one 10-minute interval. ST-1..ST-3 agree (about 13.9, 14.0 and
+    // 14.1 °C); ST-4 reads about 30.9 °C; ST-1 sends the missing-data code -999 at minute 4.
+    network_of(store, 4).await;
+    let mut batch = Vec::new();
+    for minute in 0..10 {
+        let at = BASE_MS + minute * 60_000;
+        for (index, station) in ["ST-1", "ST-2", "ST-3"].into_iter().enumerate() {
+            let value = if station == "ST-1" && minute == 4 {
+                -999.0
+            } else {
+                13.0 + 0.2 * minute as f64 + 0.1 * index as f64
+            };
+            batch.push(reading(station, "air_temperature", at, value));
+        }
+        batch.push(reading(
+            "ST-4",
+            "air_temperature",
+            at,
+            30.0 + 0.2 * minute as f64,
+        ));
+    }
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    let bucket = store
+        .claim_buckets("w", NOW_MS, 10, STALE_MS)
+        .await
+        .expect("claim")
+        .remove(0);
+    let data = store
+        .load_interval(
+            bucket.area_id,
+            &bucket.quantity,
+            bucket.bucket_start_ms - 3 * 3_600_000,
+            bucket.bucket_start_ms + bucket.interval_ms,
+        )
+        .await
+        .expect("load");
+    assert_eq!(data.stations.len(), 4);
+    let station_ids: Vec<i64> = data
+        .stations
+        .iter()
+        .map(|series| series.station_id)
+        .collect();
+    let inputs: Vec<StationReadings<'_>> = data
+        .stations
+        .iter()
+        .enumerate()
+        .map(|(handle, series)| StationReadings {
+            station: handle as u32,
+            readings: &series.readings,
+        })
+        .collect();
+    let quantities = consensor_core::checks::default_quantities();
+    let spec = quantities
+        .iter()
+        .find(|spec| spec.key == "air_temperature")
+        .expect("air temperature spec");
+    let rules = Rules::default();
+    let decided = screen_interval(&IntervalInput {
+        quantity: spec,
+        rules: &rules,
+        start_ms: bucket.bucket_start_ms,
+        end_ms: bucket.bucket_start_ms + bucket.interval_ms,
+        stations: &inputs,
+    });
+    let reasons: Vec<String> = decided
+        .set_aside
+        .iter()
+        .map(|record| record.reason(&spec.unit, &rules.missing_codes))
+        .collect();
+    let stored_result = store
+        .store_result(&bucket, &decided, &station_ids, &reasons, NOW_MS + 1)
+        .await
+        .expect("store");
+    assert!(stored_result.bucket_done);
+
+    let listed = list_all(store, &SetAsideFilter::default(), 100).await;
+    let mut by_rule: HashMap<(String, Rule), usize> = HashMap::new();
+    for row in &listed {
+        *by_rule.entry((row.station.clone(), row.rule)).or_default() += 1;
+    }
+    // API.md: the -999 is a missing-data code (the first rule that catches it), and ST-4's value
+    // scores (30.9 − 14.05) / max(1.4826 × 0.1, 0.5) ≈ 33.7 > 3.5, so all ten of its readings are
+    // set aside as far from the consensus; nothing else is.
+    let expected: HashMap<(String, Rule), usize> = [
+        (("ST-1".to_owned(), Rule::MissingCode), 1),
+        (("ST-4".to_owned(), Rule::FarFromConsensus), 10),
+    ]
+    .into_iter()
+    .collect();
+    assert_eq!(by_rule, expected);
+    // The stored reasons are the core's sentences, and the stored numbers are the core's.
+    for (row, record) in listed.iter().zip(sorted_records(&decided)) {
+        assert_eq!(row.reading_id, record.reading_id as i64);
+        assert_eq!(row.reason, record.reason(&spec.unit, &rules.missing_codes));
+        assert_eq!(row.score, record.score);
+        assert_eq!(row.consensus_median, record.consensus_median);
+        assert_eq!(row.consensus_spread, record.consensus_spread);
+        assert_eq!(row.station_value, record.station_value);
+    }
+    let point_read = store
+        .latest("north-basin", "air_temperature")
+        .await
+        .expect("latest")
+        .expect("present");
+    assert_eq!(point_read.point, decided.point);
+    assert_eq!(point_read.point.stations_used, 3);
+    assert_eq!(point_read.point.stations_set_aside, 1);
+}
+
+/// The outcome's records in the listing's order (observation time, then reading id).
+fn sorted_records(outcome: &IntervalOutcome) -> Vec<SetAside> {
+    let mut records = outcome.set_aside.clone();
+    records.sort_by_key(|record| (record.observed_at_ms, record.reading_id));
+    records
 }
