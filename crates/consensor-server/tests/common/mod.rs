@@ -1,0 +1,220 @@
+//! Test support: the real server on `127.0.0.1:0` over a real database, and a real HTTP client.
+#![allow(dead_code)]
+
+use std::sync::atomic::{AtomicI64, Ordering};
+use std::sync::Arc;
+
+use consensor_server::config::Config;
+use consensor_server::state::Clock;
+use consensor_store::testing::TestDatabase;
+use serde_json::{json, Value};
+
+/// The admin token the test servers accept (given as `admin_token`, as CONSENSOR_ADMIN_TOKEN would).
+pub const ADMIN: &str = "test-admin-token-0123456789";
+
+/// 2026-06-01T07:00:00Z in epoch milliseconds.
+pub const T0_MS: i64 = 1_780_297_200_000;
+
+/// A clock the test sets; it starts at T0 + 1 h.
+#[derive(Debug)]
+pub struct TestClock(AtomicI64);
+
+impl TestClock {
+    pub fn set_ms(&self, ms: i64) {
+        self.0.store(ms, Ordering::SeqCst);
+    }
+}
+
+impl Clock for TestClock {
+    fn now_ms(&self) -> i64 {
+        self.0.load(Ordering::SeqCst)
+    }
+}
+
+/// A running server on a fresh database.
+pub struct TestServer {
+    pub base: String,
+    pub client: reqwest::Client,
+    pub clock: Arc<TestClock>,
+    pub database: TestDatabase,
+    shutdown: Option<tokio::sync::oneshot::Sender<()>>,
+    task: Option<tokio::task::JoinHandle<anyhow::Result<()>>>,
+}
+
+impl TestServer {
+    /// Starts the server on `database` with the default configuration plus `settings`
+    /// (environment-style pairs such as `("CONSENSOR_BODY_LIMIT_BYTES", "2048")`).
+    pub async fn start(database: TestDatabase, settings: &[(&str, &str)]) -> TestServer {
+        let mut env: Vec<(String, String)> = vec![
+            ("CONSENSOR_DATABASE_URL".into(), database.url.clone()),
+            ("CONSENSOR_ADMIN_TOKEN".into(), ADMIN.into()),
+        ];
+        env.extend(
+            settings
+                .iter()
+                .map(|(k, v)| ((*k).to_owned(), (*v).to_owned())),
+        );
+        let config = Config::load(None, env, &[]).expect("test configuration");
+        let clock = Arc::new(TestClock(AtomicI64::new(T0_MS + 3_600_000)));
+        let state = consensor_server::serve::open_state(config, clock.clone())
+            .await
+            .expect("open state");
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let base = format!("http://{}", listener.local_addr().unwrap());
+        let (shutdown, stop) = tokio::sync::oneshot::channel::<()>();
+        let task = tokio::spawn(consensor_server::serve::run(listener, state, async move {
+            let _ = stop.await;
+        }));
+        TestServer {
+            base,
+            client: reqwest::Client::new(),
+            clock,
+            database,
+            shutdown: Some(shutdown),
+            task: Some(task),
+        }
+    }
+
+    pub fn url(&self, path: &str) -> String {
+        format!("{}{path}", self.base)
+    }
+
+    /// Stops the server and removes its database.
+    pub async fn stop(mut self) {
+        if let Some(shutdown) = self.shutdown.take() {
+            let _ = shutdown.send(());
+        }
+        if let Some(task) = self.task.take() {
+            task.await.expect("server task").expect("server run");
+        }
+        self.database.finish().await;
+    }
+
+    /// Sends a request with an optional bearer token and a JSON body; returns status and JSON body
+    /// (`Value::Null` for an empty body).
+    pub async fn call(
+        &self,
+        method: reqwest::Method,
+        path: &str,
+        token: Option<&str>,
+        body: Option<Value>,
+    ) -> (u16, Value) {
+        let mut request = self.client.request(method, self.url(path));
+        if let Some(token) = token {
+            request = request.bearer_auth(token);
+        }
+        if let Some(body) = body {
+            request = request.json(&body);
+        }
+        let response = request.send().await.expect("request");
+        read(response).await
+    }
+
+    /// Posts a raw body with a content type.
+    pub async fn post_raw(
+        &self,
+        path: &str,
+        token: Option<&str>,
+        content_type: &str,
+        body: impl Into<reqwest::Body>,
+    ) -> (u16, Value) {
+        let mut request = self
+            .client
+            .post(self.url(path))
+            .header("content-type", content_type)
+            .body(body);
+        if let Some(token) = token {
+            request = request.bearer_auth(token);
+        }
+        read(request.send().await.expect("request")).await
+    }
+
+    /// Creates area `area` (10-minute intervals) and the given stations in it.
+    pub async fn network(&self, area: &str, stations: &[&str]) {
+        let (status, body) = self
+            .call(
+                reqwest::Method::PUT,
+                &format!("/v1/areas/{area}"),
+                Some(ADMIN),
+                Some(json!({"name": format!("Area {area}"), "interval": "10m"})),
+            )
+            .await;
+        assert!(status == 201 || status == 200, "{status} {body}");
+        for station in stations {
+            let (status, body) = self
+                .call(
+                    reqwest::Method::PUT,
+                    &format!("/v1/stations/{station}"),
+                    Some(ADMIN),
+                    Some(json!({"area": area, "name": format!("Station {station}")})),
+                )
+                .await;
+            assert!(status == 201 || status == 200, "{status} {body}");
+        }
+    }
+
+    /// A new token with `role` (and stations for a station token).
+    pub async fn token(&self, role: &str, stations: &[&str]) -> (String, String) {
+        let (status, body) = self
+            .call(
+                reqwest::Method::POST,
+                "/v1/tokens",
+                Some(ADMIN),
+                Some(json!({"role": role, "stations": stations, "label": "test"})),
+            )
+            .await;
+        assert_eq!(status, 201, "{body}");
+        (
+            body["id"].as_str().unwrap().to_owned(),
+            body["token"].as_str().unwrap().to_owned(),
+        )
+    }
+
+    /// `GET /v1/status` → readings count.
+    pub async fn stored_readings(&self) -> u64 {
+        let (status, body) = self
+            .call(reqwest::Method::GET, "/v1/status", Some(ADMIN), None)
+            .await;
+        assert_eq!(status, 200, "{body}");
+        body["readings"].as_u64().unwrap()
+    }
+}
+
+async fn read(response: reqwest::Response) -> (u16, Value) {
+    let status = response.status().as_u16();
+    let text = response.text().await.expect("body");
+    let value = if text.is_empty() {
+        Value::Null
+    } else {
+        serde_json::from_str(&text).unwrap_or(Value::String(text))
+    };
+    (status, value)
+}
+
+/// RFC 3339 text for `T0 + minutes`.
+pub fn at(minutes: i64) -> String {
+    consensor_server::http::rfc3339(T0_MS + minutes * 60_000)
+}
+
+/// Runs an async test body on both backends: a real SQLite file, and a fresh database on the
+/// PostgreSQL server of CONSENSOR_TEST_POSTGRES_URL (skipped loudly when it is unset).
+#[macro_export]
+macro_rules! on_both_backends {
+    ($($name:ident),* $(,)?) => {
+        $(
+            mod $name {
+                #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+                async fn sqlite() {
+                    super::$name(consensor_store::testing::TestDatabase::sqlite()).await;
+                }
+
+                #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+                async fn postgres() {
+                    if let Some(database) = consensor_store::testing::TestDatabase::postgres().await {
+                        super::$name(database).await;
+                    }
+                }
+            }
+        )*
+    };
+}
