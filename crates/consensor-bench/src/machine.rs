@@ -21,6 +21,11 @@ pub fn peak_rss_mib() -> Option<f64> {
     read_status_kib("/proc/self/status", "VmHWM:").map(|kib| kib as f64 / 1024.0)
 }
 
+/// The process's current resident set size in MiB (VmRSS).
+pub fn current_rss_mib() -> Option<f64> {
+    read_status_kib("/proc/self/status", "VmRSS:").map(|kib| kib as f64 / 1024.0)
+}
+
 fn read_status_kib(path: &str, key: &str) -> Option<u64> {
     let text = std::fs::read_to_string(path).ok()?;
     let line = text.lines().find(|line| line.starts_with(key))?;

@@ -2,8 +2,11 @@
 //! same data, as a ratio, plus the process's peak memory; absolute times depend on the machine.
 //!
 //! `cargo run --release -p consensor-bench -- core [--quick]`
+//! `cargo run --release -p consensor-bench -- ingest [--quick]` (PostgreSQL too when
+//! `CONSENSOR_TEST_POSTGRES_URL` is set)
 
 mod core_bench;
+mod ingest_bench;
 mod machine;
 mod synthetic;
 
@@ -19,8 +22,12 @@ fn main() -> anyhow::Result<()> {
     let quick = args.iter().any(|a| a == "--quick");
     match args.first().map(String::as_str) {
         Some("core") => core_bench::run(quick, GLOBAL),
+        Some("ingest") => tokio::runtime::Builder::new_multi_thread()
+            .enable_all()
+            .build()?
+            .block_on(ingest_bench::run(quick)),
         _ => {
-            eprintln!("usage: consensor-bench core [--quick]");
+            eprintln!("usage: consensor-bench core|ingest [--quick]");
             std::process::exit(2);
         }
     }
