@@ -126,6 +126,7 @@ fn interval_benchmark(quick: bool, allocator: &'static StatsAlloc<System>) {
             start_ms,
             end_ms: start_ms + 600_000,
             stations: &inputs[..stations],
+            overturned: &[],
         };
         let region = Region::new(allocator);
         let began = Instant::now();

@@ -2123,6 +2123,7 @@ async fn real_interval_decision_round_trip(store: &AnyStore, _database: &TestDat
         start_ms: bucket.bucket_start_ms,
         end_ms: bucket.bucket_start_ms + bucket.interval_ms,
         stations: &inputs,
+        overturned: &[],
     });
     let reasons: Vec<String> = decided
         .set_aside

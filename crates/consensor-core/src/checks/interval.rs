@@ -86,6 +86,11 @@ pub struct IntervalInput<'a> {
     pub start_ms: i64,
     pub end_ms: i64,
     pub stations: &'a [StationReadings<'a>],
+    /// Ids of readings whose set-aside an operator overturned, sorted ascending. Such a reading is
+    /// used whatever the rules say (when it has a value): it gets no record, it counts as the
+    /// station's accepted reading for the step test, and its station's value is used without a
+    /// cross-station test, since the operator vouched for it.
+    pub overturned: &'a [u64],
 }
 
 /// How much the interval could say.
@@ -237,6 +242,8 @@ struct StationWork {
     value: Option<f64>,
     score: Option<f64>,
     far: bool,
+    /// The station has a reading in the interval that an operator overturned.
+    vouched: bool,
 }
 
 /// The centre and scale of a cross-station comparison, in the quantity's geometry.
@@ -263,17 +270,22 @@ impl IntervalScreen {
         for station in input.stations {
             let first = self.verdicts.len();
             self.judge_station_readings(input, station.readings);
-            let interval_first = first
-                + station
-                    .readings
-                    .partition_point(|r| r.observed_at_ms < input.start_ms);
+            let interval_offset = station
+                .readings
+                .partition_point(|r| r.observed_at_ms < input.start_ms);
+            let vouched = !input.overturned.is_empty()
+                && station.readings[interval_offset..]
+                    .iter()
+                    .take_while(|r| r.observed_at_ms < input.end_ms)
+                    .any(|r| input.overturned.binary_search(&r.id).is_ok());
             self.stations.push(StationWork {
                 first,
                 end: self.verdicts.len(),
-                interval_first,
+                interval_first: first + interval_offset,
                 value: None,
                 score: None,
                 far: false,
+                vouched,
             });
         }
 
@@ -348,7 +360,7 @@ impl IntervalScreen {
                 if let Some(value) = work.value {
                     let score = score(spec, &cross, value);
                     work.score = Some(score);
-                    work.far = score.abs() > input.rules.far_limit;
+                    work.far = score.abs() > input.rules.far_limit && !work.vouched;
                 }
             }
         }
@@ -422,6 +434,16 @@ impl IntervalScreen {
             previous_time = time;
             if time >= input.end_ms {
                 self.verdicts.push(Verdict::Ignored);
+                continue;
+            }
+            if let (true, Some(value)) = (
+                input.overturned.binary_search(&reading.id).is_ok(),
+                reading.value,
+            ) {
+                self.flat_window.retire_up_to(time - rules.flat_window_ms);
+                self.flat_window.push(time, value);
+                previous_accepted = Some((time, value));
+                self.verdicts.push(Verdict::Passed);
                 continue;
             }
             let verdict = match reading.value {
