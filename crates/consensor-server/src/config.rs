@@ -48,6 +48,7 @@ pub struct Config {
     pub shutdown_grace: Duration,
     pub rules: Rules,
     pub quantities: Vec<QuantitySpec>,
+    pub worker: crate::worker::WorkerSettings,
 }
 
 impl Config {
@@ -171,6 +172,59 @@ struct RawConfig {
     missing_codes: Option<Vec<f64>>,
     #[serde(default)]
     quantities: BTreeMap<String, RawQuantity>,
+    #[serde(default)]
+    worker: RawWorker,
+}
+
+/// The consensus worker's settings.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawWorker {
+    #[serde(default = "default_worker_id")]
+    id: String,
+    #[serde(default = "default_claim_batch")]
+    claim_batch: usize,
+    #[serde(default = "default_stale_after")]
+    stale_claim_seconds: f64,
+    #[serde(default = "default_history")]
+    history_minutes: f64,
+    #[serde(default = "default_poll")]
+    poll_interval_seconds: f64,
+}
+
+impl Default for RawWorker {
+    fn default() -> Self {
+        RawWorker {
+            id: default_worker_id(),
+            claim_batch: default_claim_batch(),
+            stale_claim_seconds: default_stale_after(),
+            history_minutes: default_history(),
+            poll_interval_seconds: default_poll(),
+        }
+    }
+}
+
+fn default_worker_id() -> String {
+    crate::worker::WorkerSettings::default().worker_id
+}
+fn default_claim_batch() -> usize {
+    crate::worker::WorkerSettings::default().claim_batch
+}
+fn default_stale_after() -> f64 {
+    crate::worker::WorkerSettings::default()
+        .stale_after
+        .as_secs_f64()
+}
+fn default_history() -> f64 {
+    crate::worker::WorkerSettings::default()
+        .history
+        .as_secs_f64()
+        / 60.0
+}
+fn default_poll() -> f64 {
+    crate::worker::WorkerSettings::default()
+        .poll_interval
+        .as_secs_f64()
 }
 
 /// A quantity override: every field optional for a built-in quantity; a new quantity needs `unit`,
@@ -273,6 +327,30 @@ impl RawConfig {
             rules.missing_codes = codes;
         }
         let quantities = build_quantities(self.quantities)?;
+        if self.worker.claim_batch == 0 {
+            bail!("worker.claim_batch: must be at least 1");
+        }
+        if !(self.worker.history_minutes >= 60.0
+            && self.worker.history_minutes <= 7.0 * 24.0 * 60.0)
+        {
+            bail!(
+                "worker.history_minutes: {} must be from 60 (the flat-line window) to 10080",
+                self.worker.history_minutes
+            );
+        }
+        let worker = crate::worker::WorkerSettings {
+            worker_id: self.worker.id,
+            claim_batch: self.worker.claim_batch,
+            stale_after: seconds(
+                "worker.stale_claim_seconds",
+                self.worker.stale_claim_seconds,
+            )?,
+            history: Duration::from_secs_f64(self.worker.history_minutes * 60.0),
+            poll_interval: seconds(
+                "worker.poll_interval_seconds",
+                self.worker.poll_interval_seconds,
+            )?,
+        };
         Ok(Config {
             listen,
             database_url: self.database_url,
@@ -286,6 +364,7 @@ impl RawConfig {
             shutdown_grace: seconds("shutdown_grace_seconds", self.shutdown_grace_seconds)?,
             rules,
             quantities,
+            worker,
         })
     }
 }

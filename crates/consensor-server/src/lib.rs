@@ -8,3 +8,4 @@ pub mod http;
 pub mod ingest;
 pub mod serve;
 pub mod state;
+pub mod worker;

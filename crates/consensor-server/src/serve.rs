@@ -33,7 +33,7 @@ pub async fn open_state(config: Config, clock: Arc<dyn Clock>) -> anyhow::Result
     })
 }
 
-/// Serves `state` on `listener` until `shutdown` resolves, then stops accepting connections and
+/// Serves `state` on `listener`, with the consensus worker beside it, until `shutdown` resolves, then stops accepting connections and
 /// lets requests in flight finish for at most the configured grace period. A batch in flight either
 /// commits before the process exits or is rolled back with its transaction: never half-stored.
 pub async fn run(
@@ -46,6 +46,13 @@ pub async fn run(
         .context("could not read the listening address")?;
     let grace = state.config.shutdown_grace;
     let store = state.store.clone();
+    // The consensus worker runs beside the server and stops with it.
+    let (stop_worker, worker_stop) = tokio::sync::watch::channel(false);
+    let worker = tokio::spawn(crate::worker::run(
+        state.clone(),
+        state.config.worker.clone(),
+        worker_stop,
+    ));
     let router = app(state);
     tracing::info!("listening on http://{address}");
     // Printed as well as logged, so scripts can wait for it whatever the log settings.
@@ -68,6 +75,10 @@ pub async fn run(
         } => {
             tracing::warn!(grace_seconds = grace.as_secs_f64(), "requests still in flight after the grace period; stopping");
         }
+    }
+    let _ = stop_worker.send(true);
+    if tokio::time::timeout(grace, worker).await.is_err() {
+        tracing::warn!("the worker did not stop within the grace period");
     }
     store.close().await;
     Ok(())

@@ -4,51 +4,11 @@
 
 mod common;
 
-use std::io::{BufRead, BufReader};
-use std::process::{Child, Command, Stdio};
-use std::time::{Duration, Instant};
-
 use common::ADMIN;
 use consensor_store::testing::TestDatabase;
 use serde_json::{json, Value};
 
 on_both_backends!(acknowledged_batches_survive_sigkill);
-
-/// The real binary, serving `database_url` on a random port; returns the child and its base URL
-/// once it has printed `listening on http://ADDR` (the line API.md promises).
-// The caller owns the child and kills and reaps it; a panic here fails the test, whose process
-// exit then takes the child with it.
-#[allow(clippy::zombie_processes)]
-fn start_binary(database_url: &str) -> (Child, String) {
-    let mut child = Command::new(env!("CARGO_BIN_EXE_consensor"))
-        .arg("serve")
-        .env("CONSENSOR_DATABASE_URL", database_url)
-        .env("CONSENSOR_LISTEN", "127.0.0.1:0")
-        .env("CONSENSOR_ADMIN_TOKEN", ADMIN)
-        .env("RUST_LOG", "warn")
-        .stdout(Stdio::piped())
-        .stderr(Stdio::inherit())
-        .spawn()
-        .expect("start consensor");
-    let stdout = child.stdout.take().expect("stdout");
-    let mut lines = BufReader::new(stdout).lines();
-    let deadline = Instant::now() + Duration::from_secs(30);
-    loop {
-        assert!(
-            Instant::now() < deadline,
-            "the server did not start in time"
-        );
-        let line = lines
-            .next()
-            .expect("server exited before listening")
-            .expect("read stdout");
-        if let Some(address) = line.split("listening on ").nth(1) {
-            // Keep draining stdout so the server never blocks on a full pipe.
-            std::thread::spawn(move || for _ in lines {});
-            return (child, address.trim().to_owned());
-        }
-    }
-}
 
 async fn send(
     client: &reqwest::Client,
@@ -69,7 +29,7 @@ async fn send(
 }
 
 async fn acknowledged_batches_survive_sigkill(database: TestDatabase) {
-    let (mut child, base) = start_binary(&database.url);
+    let (mut child, base) = common::start_binary(&database.url, &[]);
     let client = reqwest::Client::new();
     let (status, _) = send(
         &client,
@@ -127,7 +87,7 @@ async fn acknowledged_batches_survive_sigkill(database: TestDatabase) {
     child.wait().expect("reap");
     assert_eq!(acknowledged, 4 * 20 * 10 * 20);
 
-    let (mut child, base) = start_binary(&database.url);
+    let (mut child, base) = common::start_binary(&database.url, &[]);
     let (status, body) = send(
         &client,
         &base,

@@ -44,11 +44,14 @@ struct Status {
 async fn status(_: ReadAccess, State(state): State<AppState>) -> Result<Json<Status>, ApiError> {
     let readings = state.store.count_readings().await?;
     let pending_intervals = state.store.count_pending_buckets().await?;
+    let last_computed_at = state
+        .store
+        .last_computed_at()
+        .await?
+        .map(crate::http::rfc3339);
     Ok(Json(Status {
         readings,
         pending_intervals,
-        // The consensus worker, which computes intervals, arrives with its own issue; until then
-        // nothing has been computed.
-        last_computed_at: None,
+        last_computed_at,
     }))
 }

@@ -20,6 +20,10 @@ pub const T0_MS: i64 = 1_780_297_200_000;
 pub struct TestClock(AtomicI64);
 
 impl TestClock {
+    pub fn at(ms: i64) -> TestClock {
+        TestClock(AtomicI64::new(ms))
+    }
+
     pub fn set_ms(&self, ms: i64) {
         self.0.store(ms, Ordering::SeqCst);
     }
@@ -180,6 +184,26 @@ impl TestServer {
     }
 }
 
+/// Polls `GET /v1/status` until `pending_intervals` is 0 (at most 30 s, every 50 ms); returns the
+/// last status body.
+pub async fn wait_until_computed(server: &TestServer) -> Value {
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(30);
+    loop {
+        let (status, body) = server
+            .call(reqwest::Method::GET, "/v1/status", Some(ADMIN), None)
+            .await;
+        assert_eq!(status, 200, "{body}");
+        if body["pending_intervals"] == 0 {
+            return body;
+        }
+        assert!(
+            std::time::Instant::now() < deadline,
+            "the worker did not catch up: {body}"
+        );
+        tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+    }
+}
+
 async fn read(response: reqwest::Response) -> (u16, Value) {
     let status = response.status().as_u16();
     let text = response.text().await.expect("body");
@@ -217,4 +241,48 @@ macro_rules! on_both_backends {
             }
         )*
     };
+}
+
+/// The real `consensor` binary serving `database_url` on a random port, with extra environment
+/// `settings`; returns the child and its base URL once it has printed `listening on http://ADDR`
+/// (the line API.md promises).
+// The caller owns the child and kills and reaps it; a panic here fails the test, whose process
+// exit then takes the child with it.
+#[allow(clippy::zombie_processes)]
+pub fn start_binary(
+    database_url: &str,
+    settings: &[(&str, &str)],
+) -> (std::process::Child, String) {
+    use std::io::{BufRead, BufReader};
+    let mut command = std::process::Command::new(env!("CARGO_BIN_EXE_consensor"));
+    command
+        .arg("serve")
+        .env("CONSENSOR_DATABASE_URL", database_url)
+        .env("CONSENSOR_LISTEN", "127.0.0.1:0")
+        .env("CONSENSOR_ADMIN_TOKEN", ADMIN)
+        .env("RUST_LOG", "warn")
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::inherit());
+    for (key, value) in settings {
+        command.env(key, value);
+    }
+    let mut child = command.spawn().expect("start consensor");
+    let stdout = child.stdout.take().expect("stdout");
+    let mut lines = BufReader::new(stdout).lines();
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(30);
+    loop {
+        assert!(
+            std::time::Instant::now() < deadline,
+            "the server did not start in time"
+        );
+        let line = lines
+            .next()
+            .expect("server exited before listening")
+            .expect("read stdout");
+        if let Some(address) = line.split("listening on ").nth(1) {
+            // Keep draining stdout so the server never blocks on a full pipe.
+            std::thread::spawn(move || for _ in lines {});
+            return (child, address.trim().to_owned());
+        }
+    }
 }

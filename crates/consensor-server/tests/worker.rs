@@ -1,0 +1,237 @@
+//! The consensus worker's step, `run_once`, on a real database: readings stored, intervals computed,
+//! results stored as revisions with their set-aside lists; late data and an overturn make new
+//! revisions. Expected Points come from numpy/scipy/statsmodels on the same series
+//! (`tools/reference/worker_scenario.py`: `np.median`, `np.mean`, `scipy.stats.median_abs_deviation`,
+//! `binom.cdf` for the interval, statsmodels `HuberT(t=1.345).weights` with the scale fixed).
+
+mod common;
+
+use std::sync::Arc;
+
+use common::{TestClock, T0_MS};
+use consensor_core::checks::{Rule, Status};
+use consensor_server::config::Config;
+use consensor_server::worker::{run_once, run_until_idle, WorkerSettings};
+use consensor_store::testing::TestDatabase;
+use consensor_store::{NewArea, NewReading, NewStation, ReviewDecision, SetAsideFilter, Store};
+
+on_both_backends!(worker_decides_revises_and_honours_overturns);
+
+const MINUTE: i64 = 60_000;
+
+fn wiggle(minute: i64) -> f64 {
+    0.1 * minute.rem_euclid(3) as f64
+}
+
+fn close(got: Option<f64>, expected: f64, what: &str) {
+    let got = got.unwrap_or_else(|| panic!("{what} missing"));
+    assert!(
+        (got - expected).abs() < 1e-9,
+        "{what}: got {got}, expected {expected}"
+    );
+}
+
+async fn worker_decides_revises_and_honours_overturns(database: TestDatabase) {
+    let env = vec![("CONSENSOR_DATABASE_URL".to_owned(), database.url.clone())];
+    let config = Config::load(None, env, &[]).unwrap();
+    let clock = Arc::new(TestClock::at(T0_MS + 3_600_000));
+    let state = consensor_server::serve::open_state(config, clock.clone())
+        .await
+        .unwrap();
+    let store = state.store.clone();
+    store
+        .upsert_area(&NewArea {
+            key: "west-fields".into(),
+            name: "West fields".into(),
+            interval_ms: 600_000,
+        })
+        .await
+        .unwrap();
+    for station in ["W-0", "W-1", "W-2", "W-3", "W-4", "W-5", "W-6"] {
+        store
+            .upsert_station(&NewStation {
+                key: station.into(),
+                area_key: "west-fields".into(),
+                name: station.into(),
+                lat: None,
+                lon: None,
+                elevation_m: None,
+            })
+            .await
+            .unwrap();
+    }
+    // Seventy minutes of history and the interval [T0, T0 + 10 min), one reading a minute:
+    // W-1 sends the missing-data code -999 at minutes 2 and 5, W-2 is stuck at 17.3, W-3 reads
+    // 4.4 °C above the others (a sensor in the sun), the rest vary by the wiggle.
+    let bases = [
+        ("W-0", 15.0),
+        ("W-1", 15.2),
+        ("W-3", 19.4),
+        ("W-4", 15.1),
+        ("W-5", 14.9),
+    ];
+    let mut readings = Vec::new();
+    for minute in -70..10 {
+        for (station, base) in bases {
+            let value = if station == "W-1" && (minute == 2 || minute == 5) {
+                -999.0
+            } else {
+                base + wiggle(minute)
+            };
+            readings.push(reading(station, minute, value));
+        }
+        readings.push(reading("W-2", minute, 17.3));
+    }
+    store
+        .insert_batch(&readings, T0_MS + 3_600_000)
+        .await
+        .unwrap();
+    let settings = WorkerSettings {
+        claim_batch: 3,
+        ..WorkerSettings::default()
+    };
+    let computed = run_until_idle(&state, &settings, clock_now(&clock))
+        .await
+        .unwrap();
+    // Eight 10-minute intervals hold readings (minutes −70 … 9).
+    assert_eq!(computed, 8);
+    assert_eq!(store.count_pending_buckets().await.unwrap(), 0);
+
+    let first = store
+        .latest("west-fields", "air_temperature")
+        .await
+        .unwrap()
+        .expect("a result");
+    assert_eq!((first.start_ms, first.revision), (T0_MS, 1));
+    let p = first.point;
+    // Cross-station: W-3's value 19.5 scores 8.6 > 3.5; W-2 has no value (all flat_line).
+    assert_eq!(
+        (p.status, p.stations_used, p.stations_set_aside),
+        (Status::Ok, 4, 2)
+    );
+    close(p.median, 15.149999999999999, "median");
+    close(p.median_low, 15.1, "median_low");
+    close(p.median_high, 15.2, "median_high");
+    close(p.mean, 15.1375, "mean");
+    close(p.mad, 0.07500000000000107, "mad");
+    close(p.spread, 0.11119516638792173, "spread");
+    close(p.huber, 15.1375, "huber");
+    assert_eq!(
+        (p.ci95_low, p.ci95_high),
+        (None, None),
+        "n = 4 is too few for a 95 % interval"
+    );
+    close(p.mean_all, 16.216666666666665, "mean_all");
+
+    let in_interval = SetAsideFilter {
+        area: Some("west-fields".into()),
+        from_ms: Some(T0_MS),
+        to_ms: Some(T0_MS + 10 * MINUTE),
+        ..SetAsideFilter::default()
+    };
+    let listed = store
+        .list_set_aside(&in_interval, 1000, None)
+        .await
+        .unwrap()
+        .items;
+    let count = |station: &str, rule: Rule| {
+        listed
+            .iter()
+            .filter(|r| r.station == station && r.rule == rule)
+            .count()
+    };
+    assert_eq!(count("W-1", Rule::MissingCode), 2);
+    assert_eq!(count("W-2", Rule::FlatLine), 10);
+    assert_eq!(count("W-3", Rule::FarFromConsensus), 10);
+    assert_eq!(listed.len(), 22);
+    let sun = listed.iter().find(|r| r.station == "W-3").unwrap();
+    assert!((sun.score.unwrap() - 8.600000000000001).abs() < 1e-9);
+    assert!(
+        sun.reason.contains("19.5 Cel") && sun.reason.contains("8.6 spreads above"),
+        "{}",
+        sun.reason
+    );
+
+    // A late reading from W-6: revision 2, and revision 1 stays readable.
+    store
+        .insert_batch(&[reading("W-6", 5, 15.6)], T0_MS + 3_600_000)
+        .await
+        .unwrap();
+    assert_eq!(
+        run_once(&state, &settings, clock_now(&clock))
+            .await
+            .unwrap()
+            .computed,
+        1
+    );
+    let second = store
+        .latest("west-fields", "air_temperature")
+        .await
+        .unwrap()
+        .unwrap();
+    assert_eq!(second.revision, 2);
+    close(second.point.median, 15.2, "median after the late reading");
+    close(
+        second.point.mean,
+        15.229999999999999,
+        "mean after the late reading",
+    );
+    close(
+        second.point.huber,
+        15.187352499597253,
+        "huber after the late reading",
+    );
+    let again = store
+        .result_revision("west-fields", "air_temperature", T0_MS, Some(1))
+        .await
+        .unwrap()
+        .unwrap();
+    assert_eq!(again.point, first.point);
+
+    // An operator overturns W-3's set-aside: the interval is recomputed and W-3 is used.
+    store
+        .review_reading(
+            sun.reading_id,
+            ReviewDecision::Overturn,
+            Some("shaded since Tuesday"),
+            "tok_test",
+            T0_MS + 3_600_000,
+        )
+        .await
+        .unwrap();
+    assert_eq!(
+        run_until_idle(&state, &settings, clock_now(&clock))
+            .await
+            .unwrap(),
+        1
+    );
+    let third = store
+        .latest("west-fields", "air_temperature")
+        .await
+        .unwrap()
+        .unwrap();
+    assert_eq!((third.revision, third.point.stations_used), (3, 6));
+    close(third.point.median, 15.225, "median with W-3");
+    close(third.point.mean, 15.941666666666665, "mean with W-3");
+    close(third.point.huber, 15.299793499436147, "huber with W-3");
+    close(third.point.ci95_low, 15.0, "ci95_low (n = 6: r = 1)");
+    close(third.point.ci95_high, 19.5, "ci95_high");
+    state.store.close().await;
+    database.finish().await;
+}
+
+fn clock_now(clock: &TestClock) -> i64 {
+    use consensor_server::state::Clock;
+    clock.now_ms()
+}
+
+fn reading(station: &str, minute: i64, value: f64) -> NewReading {
+    NewReading {
+        station: station.into(),
+        quantity: "air_temperature".into(),
+        observed_at_ms: T0_MS + minute * MINUTE,
+        value: Some(value),
+        value_as_sent: Some(value),
+        unit_as_sent: None,
+    }
+}
