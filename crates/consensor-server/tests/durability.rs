@@ -126,3 +126,66 @@ async fn acknowledged_batches_survive_sigkill(database: TestDatabase) {
     child.wait().expect("reap");
     database.finish().await;
 }
+
+on_both_backends!(sigterm_stops_cleanly_and_keeps_every_acknowledged_reading);
+
+/// API.md "Command line": the server stops cleanly on SIGTERM (and SIGINT). Batches answered before
+/// the signal are kept; the process exits with status 0 within the grace period.
+async fn sigterm_stops_cleanly_and_keeps_every_acknowledged_reading(database: TestDatabase) {
+    let (mut child, base) =
+        common::start_binary(&database.url, &[("CONSENSOR_SHUTDOWN_GRACE_SECONDS", "5")]);
+    let client = reqwest::Client::new();
+    let (status, _) = send(
+        &client,
+        &base,
+        reqwest::Method::PUT,
+        "/v1/areas/calm",
+        json!({"name": "Calm", "interval": "10m"}),
+    )
+    .await;
+    assert_eq!(status, 201);
+    let (status, _) = send(
+        &client,
+        &base,
+        reqwest::Method::PUT,
+        "/v1/stations/C-1",
+        json!({"area": "calm", "name": "C-1"}),
+    )
+    .await;
+    assert_eq!(status, 201);
+    let observed = consensor_server::http::rfc3339(
+        chrono::Utc::now().timestamp_millis() / 60_000 * 60_000 - 3_600_000,
+    );
+    let (status, _) = send(&client, &base, reqwest::Method::POST, "/v1/readings", json!({"readings": [{"station": "C-1", "quantity": "air_temperature", "value": 11.5, "observed_at": observed}]})).await;
+    assert_eq!(status, 200);
+    let signalled = std::process::Command::new("kill")
+        .args(["-TERM", &child.id().to_string()])
+        .status()
+        .expect("run kill");
+    assert!(signalled.success());
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(15);
+    let exit = loop {
+        if let Some(exit) = child.try_wait().expect("poll child") {
+            break exit;
+        }
+        assert!(
+            std::time::Instant::now() < deadline,
+            "the server did not stop after SIGTERM"
+        );
+        tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+    };
+    assert!(exit.success(), "exit status {exit:?}");
+    let (mut child, base) = common::start_binary(&database.url, &[]);
+    let (status, body) = send(
+        &client,
+        &base,
+        reqwest::Method::GET,
+        "/v1/status",
+        Value::Null,
+    )
+    .await;
+    assert_eq!((status, body["readings"].as_u64()), (200, Some(1)));
+    child.kill().expect("kill");
+    child.wait().expect("reap");
+    database.finish().await;
+}
