@@ -74,8 +74,10 @@ fn load_config(args: &[String]) -> anyhow::Result<Config> {
 fn init_logging() {
     use tracing_subscriber::EnvFilter;
     let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info"));
+    use std::io::IsTerminal;
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(std::io::stderr().is_terminal())
         .with_writer(std::io::stderr);
     if std::env::var("CONSENSOR_LOG_FORMAT").as_deref() == Ok("json") {
         let _ = builder.json().try_init();
