@@ -1,8 +1,12 @@
 //! The HTTP API: one module per resource with its own `router()`, merged here.
 
+mod health;
 mod network;
 mod ops;
+mod params;
 mod readings;
+mod results;
+mod review;
 mod tokens;
 
 use std::time::Duration;
@@ -24,6 +28,9 @@ pub fn app(state: AppState) -> Router {
         .merge(network::router())
         .merge(tokens::router())
         .merge(readings::router())
+        .merge(results::router())
+        .merge(review::router())
+        .merge(health::router())
         .fallback(|| async { ApiError::not_found("no such route") })
         .layer(DefaultBodyLimit::max(body_limit))
         .layer(TimeoutLayer::with_status_code(
