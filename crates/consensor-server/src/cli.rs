@@ -12,7 +12,12 @@ usage: consensor <command> [options]
 
 commands:
   serve [--config FILE] [--listen ADDR] [--database URL]
-            run the HTTP server (and, once it lands, the consensus worker)
+            run the HTTP server and the consensus worker
+  demo [--listen ADDR] [--database PATH] [--days N] [--seed S]
+            create an invented demo network with planted faults in a fresh SQLite file
+            (default: a temporary file, removed on exit; PATH must not exist), feed it
+            N days (default 3, at most 14) of one-minute readings, compute everything,
+            print what was planted and found, and serve it until Ctrl-C
   help      print this text
 
 environment: CONSENSOR_LISTEN, CONSENSOR_DATABASE_URL, CONSENSOR_ADMIN_TOKEN, CONSENSOR_CONFIG,
@@ -30,15 +35,27 @@ pub fn run(args: &[String]) -> anyhow::Result<ExitCode> {
         Some("serve") => {
             let config = load_config(&args[1..])?;
             init_logging();
-            let runtime = tokio::runtime::Builder::new_multi_thread()
-                .enable_all()
-                .build()
-                .context("could not start the async runtime")?;
-            runtime.block_on(crate::serve::serve(config))?;
+            block_on(crate::serve::serve(config))?;
+            Ok(ExitCode::SUCCESS)
+        }
+        Some("demo") => {
+            let options = crate::demo::DemoOptions::parse(&args[1..])
+                .context("invalid demo options (see `consensor help`)")?;
+            init_logging();
+            block_on(crate::demo::run(options))?;
             Ok(ExitCode::SUCCESS)
         }
         Some(other) => bail!("unknown command {other:?}\n{USAGE}"),
     }
+}
+
+/// Runs `future` to completion on a fresh multi-threaded runtime.
+fn block_on<T>(future: impl std::future::Future<Output = anyhow::Result<T>>) -> anyhow::Result<T> {
+    tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+        .context("could not start the async runtime")?
+        .block_on(future)
 }
 
 /// Parses `[--config FILE] [--listen ADDR] [--database URL]` and loads the layered configuration.
