@@ -1,6 +1,7 @@
 //! The consensus worker: a loop around a public step, [`run_once`], that claims pending intervals,
 //! decides each with the core's checks and estimators, and stores the result as a new revision
-//! together with its set-aside list, in one transaction per interval.
+//! together with its set-aside list; neighbouring intervals of one area are loaded with one query
+//! and stored in one transaction.
 //!
 //! Ingest, review decisions and recompute requests mark (area, quantity, interval) buckets pending in
 //! the same transaction as their own change; the worker only ever reads that queue. On PostgreSQL
@@ -13,7 +14,7 @@ use anyhow::Context;
 use consensor_core::checks::{
     IntervalInput, IntervalOutcome, IntervalScreen, QuantitySpec, Rules, StationReadings,
 };
-use consensor_store::{ClaimedBucket, IntervalData, Store};
+use consensor_store::{ClaimedBucket, IntervalClaim, IntervalData, ResultToStore, Store};
 
 use crate::state::AppState;
 
@@ -30,6 +31,10 @@ pub struct WorkerSettings {
     pub history: Duration,
     /// How long an idle worker waits before looking again.
     pub poll_interval: Duration,
+    /// An interval that has not ended yet is computed at most about once per this period while
+    /// readings keep arriving in it (it waits this long after the first reading that marked it);
+    /// an ended interval is computed as soon as it is claimed.
+    pub open_interval_refresh: Duration,
 }
 
 impl Default for WorkerSettings {
@@ -42,6 +47,9 @@ impl Default for WorkerSettings {
             // "previous accepted reading" to settle before the interval (see consensor-core).
             history: Duration::from_secs(3 * 3600),
             poll_interval: Duration::from_millis(500),
+            // Common practice for a dashboard's "current value": fresh to within half a minute.
+            // It keeps a worker's load flat while every station streams into the open interval.
+            open_interval_refresh: Duration::from_secs(30),
         }
     }
 }
@@ -53,7 +61,10 @@ pub struct Outcome {
     pub computed: usize,
 }
 
-/// One step: claims up to `claim_batch` pending buckets and computes each.
+/// One step: claims up to `claim_batch` pending buckets and computes each. Claimed buckets of one
+/// area and quantity whose history windows meet form a run: the run's readings are loaded with one
+/// query, every interval of it is decided from its own window of them (exactly the readings a load
+/// of that interval alone would give), and the run's results are stored in one transaction.
 pub async fn run_once(
     state: &AppState,
     settings: &WorkerSettings,
@@ -66,47 +77,121 @@ pub async fn run_once(
             now_ms,
             settings.claim_batch,
             settings.stale_after.as_millis() as i64,
+            settings.open_interval_refresh.as_millis() as i64,
         )
         .await
         .context("could not claim pending intervals")?;
+    let history_ms = settings.history.as_millis() as i64;
     let mut outcome = Outcome::default();
-    for bucket in buckets {
-        let Some(spec) = state.config.quantity(&bucket.quantity).cloned() else {
+    for run in runs(buckets, history_ms) {
+        let Some(spec) = state.config.quantity(&run[0].quantity).cloned() else {
             // A quantity removed from the configuration after its readings were stored: the claim
-            // lapses and the bucket waits until the quantity is configured again.
-            tracing::warn!(quantity = %bucket.quantity, area = %bucket.area_key, "pending interval of an unconfigured quantity; skipped");
+            // lapses and the buckets wait until the quantity is configured again.
+            tracing::warn!(quantity = %run[0].quantity, area = %run[0].area_key, intervals = run.len(), "pending intervals of an unconfigured quantity; skipped");
             continue;
         };
-        let history_ms = settings.history.as_millis() as i64;
-        let data = state
+        outcome.computed += compute_run(state, run, spec, history_ms).await?;
+    }
+    Ok(outcome)
+}
+
+/// How long a review waits for another worker that holds its interval's claim to finish.
+const REVIEW_WAIT: Duration = Duration::from_secs(10);
+
+/// Recomputes, at once, the interval in which a just-reviewed reading was set aside, so that the
+/// review's answer is followed by a new revision that applies it. When another worker holds the
+/// interval's claim, waits (up to [`REVIEW_WAIT`]) until that worker has finished: either it
+/// computed the interval with the review already applied, or the review's mark made it release
+/// the claim and this call computes it. Returns whether this call computed it.
+pub async fn compute_interval_of_reading(
+    state: &AppState,
+    settings: &WorkerSettings,
+    reading_id: i64,
+) -> anyhow::Result<bool> {
+    let deadline = tokio::time::Instant::now() + REVIEW_WAIT;
+    loop {
+        let claim = state
             .store
-            .load_interval(
-                bucket.area_id,
-                &bucket.quantity,
-                bucket.bucket_start_ms - history_ms,
-                bucket.bucket_start_ms + bucket.interval_ms,
-            )
-            .await
-            .context("could not load an interval's readings")?;
-        let rules = state.config.rules.clone();
-        let decided = {
-            let bucket = bucket.clone();
-            // The statistics run on the blocking pool, off the async threads that serve requests.
-            tokio::task::spawn_blocking(move || decide(&bucket, &spec, &rules, data))
-                .await
-                .context("the interval computation panicked")?
-        };
-        let stored = state
-            .store
-            .store_result(
-                &bucket,
-                &decided.outcome,
-                &decided.station_ids,
-                &decided.reasons,
+            .claim_interval_of_reading(
+                reading_id,
+                // A name of its own, so that the loop's release after a failed step never hands
+                // back a claim a review is computing.
+                &format!("{}-review", settings.worker_id),
                 state.clock.now_ms(),
+                settings.stale_after.as_millis() as i64,
             )
             .await
-            .context("could not store an interval's result")?;
+            .context("could not claim the reviewed reading's interval")?;
+        match claim {
+            IntervalClaim::Claimed(bucket) => {
+                let spec = state
+                    .config
+                    .quantity(&bucket.quantity)
+                    .cloned()
+                    .with_context(|| format!("quantity {} is not configured", bucket.quantity))?;
+                let history_ms = settings.history.as_millis() as i64;
+                compute_run(state, vec![bucket], spec, history_ms).await?;
+                return Ok(true);
+            }
+            IntervalClaim::NotPending => return Ok(false),
+            IntervalClaim::Busy if tokio::time::Instant::now() >= deadline => {
+                anyhow::bail!("another worker still holds the interval's claim")
+            }
+            IntervalClaim::Busy => tokio::time::sleep(Duration::from_millis(20)).await,
+        }
+    }
+}
+
+/// Loads, decides and stores one run of neighbouring buckets; returns how many were stored.
+async fn compute_run(
+    state: &AppState,
+    run: Vec<ClaimedBucket>,
+    spec: QuantitySpec,
+    history_ms: i64,
+) -> anyhow::Result<usize> {
+    let started = std::time::Instant::now();
+    let (first, last) = (&run[0], &run[run.len() - 1]);
+    let data = state
+        .store
+        .load_interval(
+            first.area_id,
+            &first.quantity,
+            first.bucket_start_ms - history_ms,
+            last.bucket_start_ms + last.interval_ms,
+        )
+        .await
+        .context("could not load an interval's readings")?;
+    let rules = state.config.rules.clone();
+    // The statistics run on the blocking pool, off the async threads that serve requests.
+    let (run, decided) = tokio::task::spawn_blocking(move || {
+        let decided = decide_run(&run, &spec, &rules, &data, history_ms);
+        (run, decided)
+    })
+    .await
+    .context("the interval computation panicked")?;
+    let to_store: Vec<ResultToStore<'_>> = run
+        .iter()
+        .zip(&decided)
+        .map(|(bucket, decided)| ResultToStore {
+            bucket,
+            outcome: &decided.outcome,
+            station_ids: &decided.station_ids,
+            reasons: &decided.reasons,
+        })
+        .collect();
+    let stored = state
+        .store
+        .store_results(&to_store, state.clock.now_ms())
+        .await
+        .context("could not store an interval's result")?;
+    let per_interval = started.elapsed().as_secs_f64() / run.len() as f64;
+    for decided in &decided {
+        crate::metrics::record_bucket_computed(
+            per_interval,
+            &crate::metrics::set_aside_by_rule(&decided.outcome),
+        );
+    }
+    for (bucket, stored) in run.iter().zip(&stored) {
         tracing::debug!(
             area = %bucket.area_key,
             quantity = %bucket.quantity,
@@ -114,9 +199,32 @@ pub async fn run_once(
             revision = stored.revision,
             "interval computed"
         );
-        outcome.computed += 1;
     }
-    Ok(outcome)
+    Ok(stored.len())
+}
+
+/// Splits claimed buckets into runs: buckets of one area and quantity, in time order, where each
+/// bucket's history window (`history_ms` before its start) reaches back at least to the end of the
+/// one before, so that one load of the run reads no reading that none of its buckets needs.
+fn runs(mut buckets: Vec<ClaimedBucket>, history_ms: i64) -> Vec<Vec<ClaimedBucket>> {
+    buckets.sort_by_key(|b| (b.area_id, b.quantity_id, b.bucket_start_ms));
+    let mut runs: Vec<Vec<ClaimedBucket>> = Vec::new();
+    for bucket in buckets {
+        match runs.last_mut() {
+            Some(run)
+                if run.last().is_some_and(|previous| {
+                    previous.area_id == bucket.area_id
+                        && previous.quantity_id == bucket.quantity_id
+                        && bucket.bucket_start_ms - history_ms
+                            <= previous.bucket_start_ms + previous.interval_ms
+                }) =>
+            {
+                run.push(bucket)
+            }
+            _ => runs.push(vec![bucket]),
+        }
+    }
+    runs
 }
 
 /// Runs [`run_once`] until a step computes nothing; returns how many intervals were computed.
@@ -136,7 +244,7 @@ pub async fn run_until_idle(
 }
 
 /// The worker loop: steps while there is work, waits `poll_interval` when idle, and ends once
-/// `stop` turns true (after the step in hand: each interval is stored in its own transaction, so
+/// `stop` turns true (after the step in hand: each run of intervals is stored in one transaction, so
 /// stopping between two never leaves a half-stored result).
 pub async fn run(
     state: AppState,
@@ -148,7 +256,14 @@ pub async fn run(
         let idle = match run_once(&state, &settings, now_ms).await {
             Ok(step) => step.computed == 0,
             Err(error) => {
+                crate::metrics::record_worker_step_failed();
                 tracing::warn!(error = format!("{error:#}"), "worker step failed; retrying");
+                // Hand back what this step claimed, so that it is retried at the next step rather
+                // than after the stale-claim time; if the database is still away, that time
+                // remains the fallback.
+                if let Err(error) = state.store.release_claims(&settings.worker_id).await {
+                    tracing::warn!(error = %error, "could not release the failed step's claims");
+                }
                 true
             }
         };
@@ -168,42 +283,57 @@ struct Decided {
     reasons: Vec<String>,
 }
 
-fn decide(
-    bucket: &ClaimedBucket,
+/// Decides every bucket of a run from the readings loaded for the whole run: each bucket sees the
+/// readings of `[start - history_ms, end)` of every station that has any there.
+fn decide_run(
+    run: &[ClaimedBucket],
     spec: &QuantitySpec,
     rules: &Rules,
-    data: IntervalData,
-) -> Decided {
-    let station_ids: Vec<i64> = data.stations.iter().map(|s| s.station_id).collect();
-    let stations: Vec<StationReadings<'_>> = data
-        .stations
-        .iter()
-        .enumerate()
-        .map(|(handle, series)| StationReadings {
-            station: handle as u32,
-            readings: &series.readings,
-        })
-        .collect();
+    data: &IntervalData,
+    history_ms: i64,
+) -> Vec<Decided> {
     let mut overturned: Vec<u64> = data.overturned.iter().copied().collect();
     overturned.sort_unstable();
-    let input = IntervalInput {
-        quantity: spec,
-        rules,
-        start_ms: bucket.bucket_start_ms,
-        end_ms: bucket.bucket_start_ms + bucket.interval_ms,
-        stations: &stations,
-        overturned: &overturned,
-    };
-    let mut outcome = IntervalOutcome::default();
-    IntervalScreen::default().screen(&input, &mut outcome);
-    let reasons = outcome
-        .set_aside
-        .iter()
-        .map(|record| record.reason(&spec.unit, &rules.missing_codes))
-        .collect();
-    Decided {
-        outcome,
-        station_ids,
-        reasons,
-    }
+    let mut screen = IntervalScreen::default();
+    let mut stations: Vec<StationReadings<'_>> = Vec::with_capacity(data.stations.len());
+    run.iter()
+        .map(|bucket| {
+            let (from_ms, start_ms) = (bucket.bucket_start_ms - history_ms, bucket.bucket_start_ms);
+            let end_ms = start_ms + bucket.interval_ms;
+            stations.clear();
+            let mut station_ids = Vec::with_capacity(data.stations.len());
+            for series in &data.stations {
+                let readings = &series.readings;
+                let low = readings.partition_point(|r| r.observed_at_ms < from_ms);
+                let high = readings.partition_point(|r| r.observed_at_ms < end_ms);
+                if low < high {
+                    stations.push(StationReadings {
+                        station: station_ids.len() as u32,
+                        readings: &readings[low..high],
+                    });
+                    station_ids.push(series.station_id);
+                }
+            }
+            let input = IntervalInput {
+                quantity: spec,
+                rules,
+                start_ms,
+                end_ms,
+                stations: &stations,
+                overturned: &overturned,
+            };
+            let mut outcome = IntervalOutcome::default();
+            screen.screen(&input, &mut outcome);
+            let reasons = outcome
+                .set_aside
+                .iter()
+                .map(|record| record.reason(&spec.unit, &rules.missing_codes))
+                .collect();
+            Decided {
+                outcome,
+                station_ids,
+                reasons,
+            }
+        })
+        .collect()
 }

@@ -15,7 +15,10 @@ use consensor_server::worker::{run_once, run_until_idle, WorkerSettings};
 use consensor_store::testing::TestDatabase;
 use consensor_store::{NewArea, NewReading, NewStation, ReviewDecision, SetAsideFilter, Store};
 
-on_both_backends!(worker_decides_revises_and_honours_overturns);
+on_both_backends!(
+    worker_decides_revises_and_honours_overturns,
+    neighbouring_intervals_decided_together_match_one_at_a_time
+);
 
 const MINUTE: i64 = 60_000;
 
@@ -32,34 +35,15 @@ fn close(got: Option<f64>, expected: f64, what: &str) {
 }
 
 async fn worker_decides_revises_and_honours_overturns(database: TestDatabase) {
-    let env = vec![("CONSENSOR_DATABASE_URL".to_owned(), database.url.clone())];
-    let config = Config::load(None, env, &[]).unwrap();
     let clock = Arc::new(TestClock::at(T0_MS + 3_600_000));
-    let state = consensor_server::serve::open_state(config, clock.clone())
-        .await
-        .unwrap();
+    let state = open_with_area(
+        &database,
+        clock.clone(),
+        "west-fields",
+        &["W-0", "W-1", "W-2", "W-3", "W-4", "W-5", "W-6"],
+    )
+    .await;
     let store = state.store.clone();
-    store
-        .upsert_area(&NewArea {
-            key: "west-fields".into(),
-            name: "West fields".into(),
-            interval_ms: 600_000,
-        })
-        .await
-        .unwrap();
-    for station in ["W-0", "W-1", "W-2", "W-3", "W-4", "W-5", "W-6"] {
-        store
-            .upsert_station(&NewStation {
-                key: station.into(),
-                area_key: "west-fields".into(),
-                name: station.into(),
-                lat: None,
-                lon: None,
-                elevation_m: None,
-            })
-            .await
-            .unwrap();
-    }
     // Seventy minutes of history and the interval [T0, T0 + 10 min), one reading a minute:
     // W-1 sends the missing-data code -999 at minutes 2 and 5, W-2 is stuck at 17.3, W-3 reads
     // 4.4 °C above the others (a sensor in the sun), the rest vary by the wiggle.
@@ -220,6 +204,45 @@ async fn worker_decides_revises_and_honours_overturns(database: TestDatabase) {
     database.finish().await;
 }
 
+/// Opens the database as the server would and adds one area of ten-minute intervals with the
+/// given stations.
+async fn open_with_area(
+    database: &TestDatabase,
+    clock: Arc<TestClock>,
+    area: &str,
+    stations: &[&str],
+) -> consensor_server::state::AppState {
+    let env = vec![("CONSENSOR_DATABASE_URL".to_owned(), database.url.clone())];
+    let config = Config::load(None, env, &[]).unwrap();
+    let state = consensor_server::serve::open_state(config, clock)
+        .await
+        .unwrap();
+    state
+        .store
+        .upsert_area(&NewArea {
+            key: area.into(),
+            name: area.into(),
+            interval_ms: 600_000,
+        })
+        .await
+        .unwrap();
+    for station in stations {
+        state
+            .store
+            .upsert_station(&NewStation {
+                key: (*station).into(),
+                area_key: area.into(),
+                name: (*station).into(),
+                lat: None,
+                lon: None,
+                elevation_m: None,
+            })
+            .await
+            .unwrap();
+    }
+    state
+}
+
 fn clock_now(clock: &TestClock) -> i64 {
     use consensor_server::state::Clock;
     clock.now_ms()
@@ -234,4 +257,89 @@ fn reading(station: &str, minute: i64, value: f64) -> NewReading {
         value_as_sent: Some(value),
         unit_as_sent: None,
     }
+}
+
+/// The worker loads a run of neighbouring intervals with one query and decides each from its own
+/// window of it. That must give exactly what deciding them one claim at a time gives: the same
+/// Points and the same set-aside readings with the same reasons. (An equivalence of two paths of
+/// our own; the values themselves are checked against the references in the test above.)
+async fn neighbouring_intervals_decided_together_match_one_at_a_time(database: TestDatabase) {
+    let one_at_a_time_database = TestDatabase::sqlite();
+    let mut answers = Vec::new();
+    for (database, claim_batch) in [(&database, 256), (&one_at_a_time_database, 1)] {
+        let clock = Arc::new(TestClock::at(T0_MS + 24 * 3_600_000));
+        let stations = ["E-0", "E-1", "E-2", "E-3", "E-4", "E-5"];
+        let state = open_with_area(database, clock.clone(), "east-rise", &stations).await;
+        let store = state.store.clone();
+        // Seven hours of one-minute readings with the usual faults: E-1 sends -999 now and then,
+        // E-2 is stuck for two hours, E-3 reads 2.5 degrees high for an hour and E-4 jumps by 9
+        // degrees for one minute; E-5 is silent for the first three hours.
+        let mut readings = Vec::new();
+        for minute in 0..420 {
+            for (index, station) in stations.iter().enumerate() {
+                let mut value = 12.0 + 0.01 * minute as f64 + 0.2 * index as f64 + wiggle(minute);
+                match *station {
+                    "E-1" if minute % 37 == 5 => value = -999.0,
+                    "E-2" if (120..240).contains(&minute) => value = 13.7,
+                    "E-3" if (200..260).contains(&minute) => value += 2.5,
+                    "E-4" if minute == 300 => value += 9.0,
+                    "E-5" if minute < 180 => continue,
+                    _ => {}
+                }
+                readings.push(reading(station, minute, value));
+            }
+        }
+        for chunk in readings.chunks(500) {
+            store.insert_batch(chunk, T0_MS).await.unwrap();
+        }
+        let settings = WorkerSettings {
+            claim_batch,
+            ..WorkerSettings::default()
+        };
+        let computed = run_until_idle(&state, &settings, clock_now(&clock))
+            .await
+            .unwrap();
+        assert_eq!(computed, 42, "seven hours of ten-minute intervals");
+        let series = store
+            .series("east-rise", "air_temperature", T0_MS, T0_MS + 420 * MINUTE)
+            .await
+            .unwrap();
+        let filter = SetAsideFilter {
+            area: Some("east-rise".into()),
+            ..SetAsideFilter::default()
+        };
+        let set_aside: Vec<_> = store
+            .list_set_aside(&filter, 1000, None)
+            .await
+            .unwrap()
+            .items
+            .into_iter()
+            .map(|row| {
+                (
+                    row.reading_id,
+                    row.station,
+                    row.rule,
+                    row.reason,
+                    row.bucket_start_ms,
+                )
+            })
+            .collect();
+        assert!(
+            [
+                Rule::MissingCode,
+                Rule::FlatLine,
+                Rule::FarFromConsensus,
+                Rule::Step
+            ]
+            .iter()
+            .all(|rule| set_aside.iter().any(|row| row.2 == *rule)),
+            "every planted fault is set aside by its rule: {set_aside:?}"
+        );
+        answers.push((series, set_aside));
+        state.store.close().await;
+    }
+    assert_eq!(answers[0].0.len(), 42);
+    assert_eq!(answers[0], answers[1]);
+    one_at_a_time_database.finish().await;
+    database.finish().await;
 }

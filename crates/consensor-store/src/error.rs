@@ -15,8 +15,10 @@ pub enum StoreError {
 }
 
 /// SQLite's primary result codes that mean "the database cannot be used right now" rather than "this
-/// statement is wrong": busy, locked, I/O error, disk full and cannot open.
-const SQLITE_UNAVAILABLE_CODES: [i64; 5] = [5, 6, 10, 13, 14];
+/// statement is wrong": busy (5), locked (6), read-only (8: the file or its directory lost write
+/// permission, or the database was opened read-only), I/O error (10), disk full (13) and cannot
+/// open (14). Each is an operator's matter that passes; none is a bug in the statement.
+const SQLITE_UNAVAILABLE_CODES: [i64; 6] = [5, 6, 8, 10, 13, 14];
 
 /// PostgreSQL error classes (the first two characters of SQLSTATE) that mean the server cannot serve
 /// the request right now: connection exceptions (08), insufficient resources (53), operator
@@ -119,6 +121,12 @@ mod tests {
         // list; both mean another connection holds the database.
         assert!(is_unavailable_sqlite_code(5));
         assert!(is_unavailable_sqlite_code(517));
+        // SQLITE_READONLY (8), SQLITE_READONLY_DBMOVED (1032 = 8 | 4 << 8) and SQLITE_FULL (13),
+        // from SQLite's result-code list: a read-only file or a full disk passes once an operator
+        // acts, so the client is told to retry.
+        assert!(is_unavailable_sqlite_code(8));
+        assert!(is_unavailable_sqlite_code(1032));
+        assert!(is_unavailable_sqlite_code(13));
         // SQLITE_CONSTRAINT (19) is a statement problem, not an availability one.
         assert!(!is_unavailable_sqlite_code(19));
         // 08006 is PostgreSQL's connection_failure and 57P01 its admin_shutdown (SQLSTATE appendix).

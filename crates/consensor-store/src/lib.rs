@@ -70,9 +70,9 @@ pub use model::{
 };
 pub use postgres::PostgresStore;
 pub use results::{
-    AuditFilter, BadCursor, ClaimedBucket, IntervalData, Page, ReadingCounts, ResultRow,
-    ReviewDecision, ReviewRecord, ReviewState, ReviewSummary, SetAsideCursor, SetAsideFilter,
-    SetAsideRow, StationResidual, StationSeries, StoredResult,
+    AuditFilter, BadCursor, ClaimedBucket, IntervalClaim, IntervalData, Page, ReadingCounts,
+    ResultRow, ResultToStore, ReviewDecision, ReviewRecord, ReviewState, ReviewSummary,
+    SetAsideCursor, SetAsideFilter, SetAsideRow, StationResidual, StationSeries, StoredResult,
 };
 pub use sqlite::SqliteStore;
 
@@ -142,6 +142,13 @@ pub trait Store: Send + Sync {
     /// The number of (area, quantity, interval) triples waiting for the consensus worker.
     fn count_pending_buckets(&self) -> impl Future<Output = Result<u64, StoreError>> + Send;
 
+    /// The oldest `marked_at_ms` among the pending buckets (claimed ones included), or `None` when
+    /// nothing is pending. A bucket marked again takes the newer time, so `now − this` is how long
+    /// the oldest change still waiting for the worker has waited: the worker's lag.
+    fn oldest_pending_marked_at(
+        &self,
+    ) -> impl Future<Output = Result<Option<i64>, StoreError>> + Send;
+
     /// The current revision of each reading of one station and quantity with
     /// `from_ms <= observed_at_ms < to_ms`, oldest first; empty for unknown keys.
     fn readings_history(
@@ -158,10 +165,15 @@ pub trait Store: Send + Sync {
         key: &ReadingKey,
     ) -> impl Future<Output = Result<Vec<StoredReading>, StoreError>> + Send;
 
-    /// Claims up to `limit` pending buckets for `worker`, oldest `marked_at_ms` first, and returns
-    /// them in that order. A bucket can be claimed when it is unclaimed or when its claim is older
+    /// Claims up to `limit` pending buckets for `worker`, oldest marking first to the minute
+    /// (`marked_at_ms / 60 000`), and within one such minute area by area, quantity by quantity and
+    /// in time order, and returns them in that order: a backlog then comes in runs of neighbouring
+    /// intervals of one area, which the worker loads with one query. A bucket can be claimed when it is unclaimed or when its claim is older
     /// than `stale_after_ms` (`claimed_at_ms < now_ms - stale_after_ms`): the worker that held it is
-    /// taken to have crashed. The claim records `worker` and `now_ms`. On PostgreSQL the candidates
+    /// taken to have crashed. An interval still open at `now_ms` (its end is later) is held back
+    /// until `open_refresh_ms` have passed since it was first marked after its last computation,
+    /// so that readings streaming into the current interval are computed about once per period
+    /// (0: never held back). The claim records `worker` and `now_ms`. On PostgreSQL the candidates
     /// are locked with `FOR UPDATE SKIP LOCKED`, so concurrent claimers in several processes never
     /// receive the same bucket; on SQLite the claim is one `BEGIN IMMEDIATE` transaction, which
     /// serialises claimers.
@@ -171,6 +183,7 @@ pub trait Store: Send + Sync {
         now_ms: i64,
         limit: usize,
         stale_after_ms: i64,
+        open_refresh_ms: i64,
     ) -> impl Future<Output = Result<Vec<ClaimedBucket>, StoreError>> + Send;
 
     /// The current revision of every reading of the quantity from the area's stations observed in
@@ -203,6 +216,31 @@ pub trait Store: Send + Sync {
         reasons: &[String],
         now_ms: i64,
     ) -> impl Future<Output = Result<StoredResult, StoreError>> + Send;
+
+    /// Releases every claim `worker` holds, so that its buckets can be claimed again at once
+    /// (after a failed step, instead of waiting for the stale-claim time); returns how many.
+    fn release_claims(&self, worker: &str) -> impl Future<Output = Result<u64, StoreError>> + Send;
+
+    /// Claims, for `worker`, the pending interval in which the reading was last set aside (the
+    /// one a review of it marks), as [`Store::claim_buckets`] would claim it: only when it is
+    /// unclaimed or its claim is older than `stale_after_ms`. Lets a review's recomputation happen
+    /// in the request instead of waiting for the worker's next poll.
+    fn claim_interval_of_reading(
+        &self,
+        reading_id: i64,
+        worker: &str,
+        now_ms: i64,
+        stale_after_ms: i64,
+    ) -> impl Future<Output = Result<IntervalClaim, StoreError>> + Send;
+
+    /// Stores several decided buckets as [`Store::store_result`] does for one, all in one
+    /// transaction (one commit, so one flush to disk on SQLite, for the whole batch); returns what
+    /// was written for each, in order. Nothing is written when any of them is refused.
+    fn store_results(
+        &self,
+        results: &[ResultToStore<'_>],
+        now_ms: i64,
+    ) -> impl Future<Output = Result<Vec<StoredResult>, StoreError>> + Send;
 
     /// The latest revision of every interval of the area and quantity with a result and a start in
     /// `[from_ms, to_ms)`, ordered by start. Empty for an unknown area or quantity.
@@ -366,6 +404,37 @@ impl AnyStore {
             AnyStore::Postgres(_) => Backend::Postgres,
         }
     }
+
+    /// How the connection pool is used right now (for the metrics endpoint). Reading it costs no
+    /// query and takes no connection.
+    pub fn pool_status(&self) -> PoolStatus {
+        match self {
+            AnyStore::Sqlite(store) => PoolStatus::of(store.pool()),
+            AnyStore::Postgres(store) => PoolStatus::of(store.pool()),
+        }
+    }
+}
+
+/// A snapshot of a connection pool: `open` connections (idle or in use), how many of them are
+/// `idle`, and the most the pool may open (`max`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct PoolStatus {
+    pub open: u32,
+    pub idle: u32,
+    pub max: u32,
+}
+
+impl PoolStatus {
+    fn of<DB: sqlx::Database>(pool: &sqlx::Pool<DB>) -> PoolStatus {
+        let open = pool.size();
+        PoolStatus {
+            open,
+            // The two counts are read one after the other, so a connection returned in between
+            // could make idle exceed open by one; clamp so that `open − idle` is never negative.
+            idle: u32::try_from(pool.num_idle()).unwrap_or(u32::MAX).min(open),
+            max: pool.options().get_max_connections(),
+        }
+    }
 }
 
 /// Forwards one [`Store`] method to whichever backend the [`AnyStore`] holds.
@@ -434,6 +503,10 @@ impl Store for AnyStore {
         dispatch!(self, store => store.count_pending_buckets())
     }
 
+    async fn oldest_pending_marked_at(&self) -> Result<Option<i64>, StoreError> {
+        dispatch!(self, store => store.oldest_pending_marked_at())
+    }
+
     async fn readings_history(
         &self,
         station: &str,
@@ -454,8 +527,9 @@ impl Store for AnyStore {
         now_ms: i64,
         limit: usize,
         stale_after_ms: i64,
+        open_refresh_ms: i64,
     ) -> Result<Vec<ClaimedBucket>, StoreError> {
-        dispatch!(self, store => store.claim_buckets(worker, now_ms, limit, stale_after_ms))
+        dispatch!(self, store => store.claim_buckets(worker, now_ms, limit, stale_after_ms, open_refresh_ms))
     }
 
     async fn load_interval(
@@ -477,6 +551,28 @@ impl Store for AnyStore {
         now_ms: i64,
     ) -> Result<StoredResult, StoreError> {
         dispatch!(self, store => store.store_result(bucket, outcome, station_ids, reasons, now_ms))
+    }
+
+    async fn store_results(
+        &self,
+        results: &[ResultToStore<'_>],
+        now_ms: i64,
+    ) -> Result<Vec<StoredResult>, StoreError> {
+        dispatch!(self, store => store.store_results(results, now_ms))
+    }
+
+    async fn release_claims(&self, worker: &str) -> Result<u64, StoreError> {
+        dispatch!(self, store => store.release_claims(worker))
+    }
+
+    async fn claim_interval_of_reading(
+        &self,
+        reading_id: i64,
+        worker: &str,
+        now_ms: i64,
+        stale_after_ms: i64,
+    ) -> Result<IntervalClaim, StoreError> {
+        dispatch!(self, store => store.claim_interval_of_reading(reading_id, worker, now_ms, stale_after_ms))
     }
 
     async fn series(

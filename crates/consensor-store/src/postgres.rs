@@ -37,6 +37,17 @@ impl PostgresStore {
         let pool = PgPoolOptions::new()
             .max_connections(options.max_connections)
             .acquire_timeout(options.acquire_timeout)
+            // A connection whose ROLLBACK failed is still counted as inside a transaction and
+            // would turn every later `begin` into a savepoint; it is closed instead of being
+            // handed out (as on SQLite). A connection broken by a server restart fails the test
+            // ping sqlx runs before each acquire (`test_before_acquire`, on by default) and is
+            // replaced by a new one, so the pool reconnects by itself.
+            .before_acquire(|connection, _| {
+                Box::pin(async move {
+                    use sqlx::Connection;
+                    Ok(!connection.is_in_transaction())
+                })
+            })
             .connect_with(connect_options)
             .await?;
         MIGRATOR.run(&pool).await?;
@@ -129,8 +140,9 @@ impl PostgresStore {
         if !plan.buckets.is_empty() {
             let buckets = &plan.buckets;
             sqlx::query(
-                "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, marked_at_ms) \
-                 SELECT k.area_id, k.quantity_id, k.bucket_start_ms, $4 \
+                "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, marked_at_ms, \
+                 first_marked_at_ms) \
+                 SELECT k.area_id, k.quantity_id, k.bucket_start_ms, $4, $4 \
                  FROM UNNEST($1::bigint[], $2::bigint[], $3::bigint[]) \
                  AS k(area_id, quantity_id, bucket_start_ms) \
                  ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
@@ -302,6 +314,15 @@ impl Store for PostgresStore {
         shared::count(&self.pool, "SELECT COUNT(*) FROM pending_buckets").await
     }
 
+    async fn oldest_pending_marked_at(&self) -> Result<Option<i64>, StoreError> {
+        // MIN over the index pending_buckets_marked: one index probe, not a scan.
+        let (oldest,): (Option<i64>,) =
+            sqlx::query_as("SELECT MIN(marked_at_ms) FROM pending_buckets")
+                .fetch_one(&self.pool)
+                .await?;
+        Ok(oldest)
+    }
+
     async fn readings_history(
         &self,
         station: &str,
@@ -327,16 +348,19 @@ impl Store for PostgresStore {
         now_ms: i64,
         limit: usize,
         stale_after_ms: i64,
+        open_refresh_ms: i64,
     ) -> Result<Vec<ClaimedBucket>, StoreError> {
         if limit == 0 {
             return Ok(Vec::new());
         }
         let rows = sqlx::query(
             "WITH candidates AS MATERIALIZED ( \
-               SELECT area_id, quantity_id, bucket_start_ms FROM pending_buckets \
-               WHERE claimed_at_ms IS NULL OR claimed_at_ms < $3 \
-               ORDER BY marked_at_ms, area_id, quantity_id, bucket_start_ms \
-               LIMIT $4 FOR UPDATE SKIP LOCKED), \
+               SELECT area_id, quantity_id, bucket_start_ms FROM pending_buckets pb \
+               WHERE (claimed_at_ms IS NULL OR claimed_at_ms < $3) \
+               AND (bucket_start_ms + (SELECT interval_ms FROM areas WHERE id = pb.area_id) <= $2 \
+               OR first_marked_at_ms <= $5) \
+               ORDER BY marked_at_ms / 60000, area_id, quantity_id, bucket_start_ms \
+               LIMIT $4 FOR UPDATE OF pb SKIP LOCKED), \
              claimed AS ( \
                UPDATE pending_buckets p SET claimed_by = $1, claimed_at_ms = $2 \
                FROM candidates c WHERE p.area_id = c.area_id \
@@ -347,12 +371,13 @@ impl Store for PostgresStore {
              c.mark_count \
              FROM claimed c JOIN areas a ON a.id = c.area_id \
              JOIN quantities q ON q.id = c.quantity_id \
-             ORDER BY c.marked_at_ms, c.area_id, c.quantity_id, c.bucket_start_ms",
+             ORDER BY c.marked_at_ms / 60000, c.area_id, c.quantity_id, c.bucket_start_ms",
         )
         .bind(worker)
         .bind(now_ms)
         .bind(now_ms.saturating_sub(stale_after_ms))
         .bind(i64::try_from(limit).unwrap_or(i64::MAX))
+        .bind(now_ms.saturating_sub(open_refresh_ms))
         .fetch_all(&self.pool)
         .await?;
         let mut claimed = Vec::with_capacity(rows.len());

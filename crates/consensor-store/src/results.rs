@@ -50,6 +50,28 @@ pub struct StationSeries {
     pub readings: Vec<Reading>,
 }
 
+/// One decided interval handed to `Store::store_results`: the claimed bucket, the core's outcome,
+/// the row id of each station handle the outcome uses (`station_ids[h]` for handle `h`), and the
+/// reason sentence of each set-aside record (`reasons[i]` for `outcome.set_aside[i]`).
+#[derive(Debug, Clone, Copy)]
+pub struct ResultToStore<'a> {
+    pub bucket: &'a ClaimedBucket,
+    pub outcome: &'a consensor_core::checks::IntervalOutcome,
+    pub station_ids: &'a [i64],
+    pub reasons: &'a [String],
+}
+
+/// What claiming the interval of one reviewed reading found.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum IntervalClaim {
+    /// The interval was pending and is now claimed by the caller, who must compute it.
+    Claimed(ClaimedBucket),
+    /// The interval is pending but another worker holds a live claim on it.
+    Busy,
+    /// Nothing is pending for the interval: it has been computed since it was marked.
+    NotPending,
+}
+
 /// What `store_result` wrote.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct StoredResult {

@@ -27,10 +27,12 @@ macro_rules! result_queries {
             type DatabaseRow = <$database as sqlx::Database>::Row;
 
             /// Every current reading of one area's stations and one quantity in
-            /// `[from_ms, to_ms)`, with the latest review decision of each, in one query. The
-            /// range scan runs on the time-first unique index of the readings; the station's area
-            /// is checked through the stations' primary key, and "current" (no higher revision of
-            /// the same key) is a probe of the same unique index.
+            /// `[from_ms, to_ms)`, with the ids of those whose latest review is an overturn. The
+            /// area's stations drive the loop (`CROSS JOIN` keeps that order on SQLite) and each
+            /// station's readings are one range of the station-first index (migration 0003), read
+            /// in (time, revision) order; of several revisions of one reading the last one read is
+            /// kept, so "current" costs no probe per row. Reviews are few: one more query finds the
+            /// overturned ones among the range's readings.
             pub(crate) async fn load_interval(
                 pool: &Pool<$database>,
                 area_id: i64,
@@ -38,19 +40,18 @@ macro_rules! result_queries {
                 from_ms: i64,
                 to_ms: i64,
             ) -> Result<IntervalData, StoreError> {
-                let rows = sqlx::query(
-                    "SELECT s.id, s.key, r.id, r.observed_at_ms, r.value, r.value_as_sent, \
-                     (SELECT v.decision FROM reviews v WHERE v.reading_id = r.id \
-                      ORDER BY v.id DESC LIMIT 1) \
-                     FROM readings r JOIN stations s ON s.id = r.station_id \
-                     WHERE s.area_id = $1 \
+                let stations: Vec<(i64, String)> =
+                    sqlx::query_as("SELECT id, key FROM stations WHERE area_id = $1 ORDER BY key")
+                        .bind(area_id)
+                        .fetch_all(pool)
+                        .await?;
+                let rows: Vec<(i64, i64, i64, Option<f64>, Option<f64>)> = sqlx::query_as(
+                    "SELECT s.id, r.id, r.observed_at_ms, r.value, r.value_as_sent \
+                     FROM stations s CROSS JOIN readings r \
+                     WHERE s.area_id = $1 AND r.station_id = s.id \
                      AND r.quantity_id = (SELECT id FROM quantities WHERE key = $2) \
                      AND r.observed_at_ms >= $3 AND r.observed_at_ms < $4 \
-                     AND NOT EXISTS (SELECT 1 FROM readings newer \
-                     WHERE newer.observed_at_ms = r.observed_at_ms \
-                     AND newer.station_id = r.station_id \
-                     AND newer.quantity_id = r.quantity_id AND newer.revision > r.revision) \
-                     ORDER BY s.key, r.observed_at_ms",
+                     ORDER BY s.id, r.observed_at_ms, r.revision",
                 )
                 .bind(area_id)
                 .bind(quantity)
@@ -58,31 +59,147 @@ macro_rules! result_queries {
                 .bind(to_ms)
                 .fetch_all(pool)
                 .await?;
-                let mut data = IntervalData::default();
-                for row in &rows {
-                    let station_id: i64 = row.try_get(0)?;
-                    let reading = Reading {
-                        id: reading_id_for_core(row.try_get(2)?)?,
-                        observed_at_ms: row.try_get(3)?,
-                        value: row.try_get(4)?,
-                        value_as_sent: row.try_get(5)?,
-                    };
-                    let decision: Option<String> = row.try_get(6)?;
-                    if decision.as_deref() == Some(ReviewDecision::Overturn.as_str()) {
-                        data.overturned.insert(reading.id);
-                    }
-                    match data.stations.last_mut() {
-                        Some(series) if series.station_id == station_id => {
-                            series.readings.push(reading);
+                let mut series: Vec<StationSeries> = stations
+                    .into_iter()
+                    .map(|(station_id, station_key)| StationSeries {
+                        station_id,
+                        station_key,
+                        readings: Vec::new(),
+                    })
+                    .collect();
+                let mut by_id: Vec<(i64, usize)> = series
+                    .iter()
+                    .enumerate()
+                    .map(|(index, station)| (station.station_id, index))
+                    .collect();
+                by_id.sort_unstable();
+                let mut current: Option<(i64, usize)> = None;
+                for (station_id, id, observed_at_ms, value, value_as_sent) in rows {
+                    let index = match current {
+                        Some((id, index)) if id == station_id => index,
+                        _ => {
+                            let found = by_id
+                                .binary_search_by_key(&station_id, |&(id, _)| id)
+                                .map_err(|_| {
+                                    StoreError::Other(format!(
+                                        "station {station_id} left its area during a read"
+                                    ))
+                                })?;
+                            current = Some(by_id[found]);
+                            by_id[found].1
                         }
-                        _ => data.stations.push(StationSeries {
-                            station_id,
-                            station_key: row.try_get(1)?,
-                            readings: vec![reading],
-                        }),
+                    };
+                    let reading = Reading {
+                        id: reading_id_for_core(id)?,
+                        observed_at_ms,
+                        value,
+                        value_as_sent,
+                    };
+                    let readings = &mut series[index].readings;
+                    match readings.last_mut() {
+                        // A higher revision of the same reading: it replaces the one before.
+                        Some(last) if last.observed_at_ms == observed_at_ms => *last = reading,
+                        _ => readings.push(reading),
                     }
                 }
+                series.retain(|station| !station.readings.is_empty());
+                let reviews: Vec<(i64, String)> = sqlx::query_as(
+                    "SELECT v.reading_id, v.decision FROM reviews v \
+                     JOIN readings r ON r.id = v.reading_id \
+                     JOIN stations s ON s.id = r.station_id \
+                     WHERE s.area_id = $1 \
+                     AND r.quantity_id = (SELECT id FROM quantities WHERE key = $2) \
+                     AND r.observed_at_ms >= $3 AND r.observed_at_ms < $4 \
+                     ORDER BY v.reading_id, v.id",
+                )
+                .bind(area_id)
+                .bind(quantity)
+                .bind(from_ms)
+                .bind(to_ms)
+                .fetch_all(pool)
+                .await?;
+                let mut data = IntervalData {
+                    stations: series,
+                    ..IntervalData::default()
+                };
+                // Each reading's reviews in order: the last one read is its latest decision.
+                let mut latest: Option<(i64, String)> = None;
+                for review in reviews.into_iter().chain(std::iter::once((0, String::new()))) {
+                    if let Some((reading_id, decision)) = latest.take() {
+                        if reading_id != review.0
+                            && decision == ReviewDecision::Overturn.as_str()
+                        {
+                            data.overturned.insert(reading_id_for_core(reading_id)?);
+                        }
+                    }
+                    latest = Some(review);
+                }
                 Ok(data)
+            }
+
+            /// See `Store::claim_interval_of_reading`. The claim is one UPDATE of the pending row
+            /// with the claimability test in its WHERE clause, so of two concurrent claimers (a
+            /// request and a worker, or two replicas) at most one sees it succeed.
+            pub(crate) async fn claim_interval_of_reading(
+                pool: &Pool<$database>,
+                reading_id: i64,
+                worker: &str,
+                now_ms: i64,
+                stale_after_ms: i64,
+            ) -> Result<crate::IntervalClaim, StoreError> {
+                let found: Option<(i64, String, i64, String, i64, i64)> = sqlx::query_as(
+                    "SELECT a.id, a.key, q.id, q.key, ir.bucket_start_ms, a.interval_ms \
+                     FROM set_aside sa JOIN interval_results ir ON ir.id = sa.result_id \
+                     JOIN areas a ON a.id = ir.area_id \
+                     JOIN quantities q ON q.id = ir.quantity_id \
+                     WHERE sa.reading_id = $1 ORDER BY sa.result_id DESC LIMIT 1",
+                )
+                .bind(reading_id)
+                .fetch_optional(pool)
+                .await?;
+                let Some((area_id, area_key, quantity_id, quantity, bucket_start_ms, interval_ms)) =
+                    found
+                else {
+                    return Ok(crate::IntervalClaim::NotPending);
+                };
+                let claimed: Option<(i64,)> = sqlx::query_as(
+                    "UPDATE pending_buckets SET claimed_by = $1, claimed_at_ms = $2 \
+                     WHERE area_id = $3 AND quantity_id = $4 AND bucket_start_ms = $5 \
+                     AND (claimed_at_ms IS NULL OR claimed_at_ms < $6) RETURNING mark_count",
+                )
+                .bind(worker)
+                .bind(now_ms)
+                .bind(area_id)
+                .bind(quantity_id)
+                .bind(bucket_start_ms)
+                .bind(now_ms.saturating_sub(stale_after_ms))
+                .fetch_optional(pool)
+                .await?;
+                if let Some((mark_count,)) = claimed {
+                    return Ok(crate::IntervalClaim::Claimed(ClaimedBucket {
+                        area_id,
+                        area_key,
+                        quantity_id,
+                        quantity,
+                        bucket_start_ms,
+                        interval_ms,
+                        mark_count,
+                        claimed_by: worker.to_owned(),
+                    }));
+                }
+                let pending: Option<(i64,)> = sqlx::query_as(
+                    "SELECT mark_count FROM pending_buckets \
+                     WHERE area_id = $1 AND quantity_id = $2 AND bucket_start_ms = $3",
+                )
+                .bind(area_id)
+                .bind(quantity_id)
+                .bind(bucket_start_ms)
+                .fetch_optional(pool)
+                .await?;
+                Ok(match pending {
+                    Some(_) => crate::IntervalClaim::Busy,
+                    None => crate::IntervalClaim::NotPending,
+                })
             }
 
             /// Writes one result, its set-aside records and station values, moves the interval's
@@ -566,7 +683,7 @@ macro_rules! result_queries {
                 .await?;
                 sqlx::query(
                     "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, \
-                     marked_at_ms) VALUES ($1, $2, $3, $4) \
+                     marked_at_ms, first_marked_at_ms) VALUES ($1, $2, $3, $4, $4) \
                      ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
                      marked_at_ms = excluded.marked_at_ms, \
                      mark_count = pending_buckets.mark_count + 1",
@@ -676,7 +793,8 @@ macro_rules! result_queries {
                 // starts of intervals before 1970 aligned exactly as `bucket_start_ms` aligns them.
                 let mut statement = QueryBuilder::<$database>::new(
                     "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, \
-                     marked_at_ms) SELECT DISTINCT s.area_id, r.quantity_id, r.observed_at_ms - \
+                     marked_at_ms, first_marked_at_ms) SELECT DISTINCT s.area_id, r.quantity_id, \
+                     r.observed_at_ms - \
                      ((r.observed_at_ms % ",
                 );
                 statement
@@ -685,6 +803,8 @@ macro_rules! result_queries {
                     .push_bind(interval_ms)
                     .push(") % ")
                     .push_bind(interval_ms)
+                    .push(", ")
+                    .push_bind(now_ms)
                     .push(", ")
                     .push_bind(now_ms)
                     .push(" FROM readings r JOIN stations s ON s.id = r.station_id")
@@ -908,6 +1028,64 @@ macro_rules! result_store_methods {
                     now_ms,
                 )
                 .await?;
+                tx.commit().await?;
+                Ok(stored)
+            })
+            .await
+        }
+
+        async fn release_claims(&self, worker: &str) -> Result<u64, StoreError> {
+            Ok(sqlx::query(
+                "UPDATE pending_buckets SET claimed_by = NULL, claimed_at_ms = NULL \
+                 WHERE claimed_by = $1",
+            )
+            .bind(worker)
+            .execute(&self.pool)
+            .await?
+            .rows_affected())
+        }
+
+        async fn claim_interval_of_reading(
+            &self,
+            reading_id: i64,
+            worker: &str,
+            now_ms: i64,
+            stale_after_ms: i64,
+        ) -> Result<crate::IntervalClaim, StoreError> {
+            results_shared::claim_interval_of_reading(
+                &self.pool,
+                reading_id,
+                worker,
+                now_ms,
+                stale_after_ms,
+            )
+            .await
+        }
+
+        async fn store_results(
+            &self,
+            results: &[crate::ResultToStore<'_>],
+            now_ms: i64,
+        ) -> Result<Vec<crate::StoredResult>, StoreError> {
+            if results.is_empty() {
+                return Ok(Vec::new());
+            }
+            crate::batch::with_retries(|| async {
+                let mut tx = self.begin_write().await?;
+                let mut stored = Vec::with_capacity(results.len());
+                for result in results {
+                    stored.push(
+                        results_shared::store_result(
+                            &mut tx,
+                            result.bucket,
+                            result.outcome,
+                            result.station_ids,
+                            result.reasons,
+                            now_ms,
+                        )
+                        .await?,
+                    );
+                }
                 tx.commit().await?;
                 Ok(stored)
             })

@@ -50,6 +50,18 @@ impl SqliteStore {
         let pool = SqlitePoolOptions::new()
             .max_connections(options.max_connections)
             .acquire_timeout(options.acquire_timeout)
+            // SQLite rolls a transaction back by itself on some errors (a full disk, an I/O
+            // error); the ROLLBACK that follows then fails and sqlx still counts the connection as
+            // inside a transaction, so every later `BEGIN IMMEDIATE` on it would fail for good.
+            // Such a connection is closed here instead of being handed out (the pool opens a
+            // fresh one). The check runs at acquire, after the release ping, so a rollback queued
+            // by a dropped transaction has been carried out by then.
+            .before_acquire(|connection, _| {
+                Box::pin(async move {
+                    use sqlx::Connection;
+                    Ok(!connection.is_in_transaction())
+                })
+            })
             .connect_with(connect_options)
             .await?;
         MIGRATOR.run(&pool).await?;
@@ -81,6 +93,7 @@ impl SqliteStore {
         now_ms: i64,
         limit: usize,
         stale_after_ms: i64,
+        open_refresh_ms: i64,
     ) -> Result<Vec<ClaimedBucket>, sqlx::Error> {
         let mut tx = self.begin_immediate().await?;
         let rows = sqlx::query(
@@ -88,11 +101,14 @@ impl SqliteStore {
              a.interval_ms, p.mark_count \
              FROM pending_buckets p JOIN areas a ON a.id = p.area_id \
              JOIN quantities q ON q.id = p.quantity_id \
-             WHERE p.claimed_at_ms IS NULL OR p.claimed_at_ms < $1 \
-             ORDER BY p.marked_at_ms, p.area_id, p.quantity_id, p.bucket_start_ms LIMIT $2",
+             WHERE (p.claimed_at_ms IS NULL OR p.claimed_at_ms < $1) \
+             AND (p.bucket_start_ms + a.interval_ms <= $3 OR p.first_marked_at_ms <= $4) \
+             ORDER BY p.marked_at_ms / 60000, p.area_id, p.quantity_id, p.bucket_start_ms LIMIT $2",
         )
         .bind(now_ms.saturating_sub(stale_after_ms))
         .bind(i64::try_from(limit).unwrap_or(i64::MAX))
+        .bind(now_ms)
+        .bind(now_ms.saturating_sub(open_refresh_ms))
         .fetch_all(&mut *tx)
         .await?;
         let mut row_ids = Vec::with_capacity(rows.len());
@@ -186,9 +202,10 @@ impl SqliteStore {
             insert.build().execute(&mut *tx).await?;
         }
 
-        for chunk in plan.buckets.chunks(SQLITE_MAX_PARAMETERS / 4) {
+        for chunk in plan.buckets.chunks(SQLITE_MAX_PARAMETERS / 5) {
             let mut upsert = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, marked_at_ms) ",
+                "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, marked_at_ms, \
+                 first_marked_at_ms) ",
             );
             upsert.push_values(
                 chunk,
@@ -197,6 +214,7 @@ impl SqliteStore {
                         .push_bind(area_id)
                         .push_bind(quantity_id)
                         .push_bind(bucket_start_ms)
+                        .push_bind(now_ms)
                         .push_bind(now_ms);
                 },
             );
@@ -383,6 +401,15 @@ impl Store for SqliteStore {
         shared::count(&self.pool, "SELECT COUNT(*) FROM pending_buckets").await
     }
 
+    async fn oldest_pending_marked_at(&self) -> Result<Option<i64>, StoreError> {
+        // MIN over the index pending_buckets_marked: one index probe, not a scan.
+        let (oldest,): (Option<i64>,) =
+            sqlx::query_as("SELECT MIN(marked_at_ms) FROM pending_buckets")
+                .fetch_one(&self.pool)
+                .await?;
+        Ok(oldest)
+    }
+
     async fn readings_history(
         &self,
         station: &str,
@@ -403,12 +430,13 @@ impl Store for SqliteStore {
         now_ms: i64,
         limit: usize,
         stale_after_ms: i64,
+        open_refresh_ms: i64,
     ) -> Result<Vec<ClaimedBucket>, StoreError> {
         if limit == 0 {
             return Ok(Vec::new());
         }
         Ok(self
-            .try_claim_buckets(worker, now_ms, limit, stale_after_ms)
+            .try_claim_buckets(worker, now_ms, limit, stale_after_ms, open_refresh_ms)
             .await?)
     }
 

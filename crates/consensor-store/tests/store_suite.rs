@@ -120,7 +120,125 @@ on_both_backends!(
     mark_for_recompute_counts_intervals_with_readings,
     station_health_figures,
     real_interval_decision_round_trip,
+    oldest_pending_mark_gives_the_worker_lag,
+    pool_status_counts_open_idle_and_max,
+    open_intervals_wait_for_their_refresh_and_released_claims_return,
 );
+
+/// The oldest mark among the pending buckets, which the metrics endpoint turns into the worker's
+/// lag. Every expected time is one of the `now_ms` values the test passes.
+async fn oldest_pending_mark_gives_the_worker_lag(store: &AnyStore, _database: &TestDatabase) {
+    network(store).await;
+    // Nothing pending: no lag to report.
+    assert_eq!(store.oldest_pending_marked_at().await.expect("empty"), None);
+    // Two buckets marked 5 s apart: the older mark is the oldest.
+    store
+        .insert_batch(&[reading("ST-1", "air_temperature", BASE_MS, 10.0)], NOW_MS)
+        .await
+        .expect("first bucket");
+    store
+        .insert_batch(
+            &[reading(
+                "ST-1",
+                "air_temperature",
+                BASE_MS + INTERVAL_MS,
+                10.0,
+            )],
+            NOW_MS + 5_000,
+        )
+        .await
+        .expect("second bucket");
+    assert_eq!(
+        store.oldest_pending_marked_at().await.expect("two"),
+        Some(NOW_MS)
+    );
+    // A duplicate marks nothing, so the oldest mark stays.
+    store
+        .insert_batch(
+            &[reading("ST-1", "air_temperature", BASE_MS, 10.0)],
+            NOW_MS + 7_000,
+        )
+        .await
+        .expect("duplicate");
+    assert_eq!(
+        store
+            .oldest_pending_marked_at()
+            .await
+            .expect("after duplicate"),
+        Some(NOW_MS)
+    );
+    // A revision marks the first bucket again with its own time, so the second bucket now holds
+    // the oldest change still waiting.
+    store
+        .insert_batch(
+            &[reading("ST-1", "air_temperature", BASE_MS, 11.0)],
+            NOW_MS + 9_000,
+        )
+        .await
+        .expect("revision");
+    assert_eq!(
+        store
+            .oldest_pending_marked_at()
+            .await
+            .expect("after revision"),
+        Some(NOW_MS + 5_000)
+    );
+    // A claim does not change the marks: a bucket being computed is still waiting.
+    let claimed = claim_all(store, NOW_MS + 10_000).await;
+    assert_eq!(claimed.len(), 2);
+    assert_eq!(
+        store.oldest_pending_marked_at().await.expect("claimed"),
+        Some(NOW_MS + 5_000)
+    );
+    // Storing the older bucket's result removes it; the other one's mark is then the oldest.
+    let ids = station_ids(store).await;
+    let second = &claimed[&(
+        "north-basin".to_owned(),
+        "air_temperature".to_owned(),
+        BASE_MS + INTERVAL_MS,
+    )];
+    let done = store_outcome(
+        store,
+        second,
+        &outcome(point(Some(10.0), 1, 0), Vec::new(), Vec::new()),
+        &[ids["ST-1"], ids["ST-2"]],
+        NOW_MS + 11_000,
+    )
+    .await;
+    assert!(done.bucket_done);
+    assert_eq!(
+        store.oldest_pending_marked_at().await.expect("one left"),
+        Some(NOW_MS + 9_000)
+    );
+}
+
+/// The pool snapshot behind the metrics endpoint's pool gauges.
+async fn pool_status_counts_open_idle_and_max(store: &AnyStore, _database: &TestDatabase) {
+    // The test databases open with the default options (testing.rs): at most 8 connections.
+    let max = consensor_store::StoreOptions::default().max_connections;
+    store.ping().await.expect("ping");
+    let status = store.pool_status();
+    assert_eq!(status.max, max);
+    assert!(status.open >= 1 && status.open <= max, "{status:?}");
+    assert!(status.idle <= status.open, "{status:?}");
+    // A connection held outside the pool is open and not idle.
+    let held = match store {
+        AnyStore::Sqlite(sqlite) => {
+            let connection = sqlite.pool().acquire().await.expect("acquire");
+            let status = store.pool_status();
+            drop(connection);
+            status
+        }
+        AnyStore::Postgres(postgres) => {
+            let connection = postgres.pool().acquire().await.expect("acquire");
+            let status = store.pool_status();
+            drop(connection);
+            status
+        }
+    };
+    assert!(held.open >= 1, "{held:?}");
+    assert!(held.open - held.idle >= 1, "{held:?}");
+}
 
 /// Creates area `north-basin` (10-minute intervals) with stations ST-1 and ST-2.
 async fn network(store: &AnyStore) {
@@ -754,7 +872,7 @@ async fn stored(store: &AnyStore, station: &str, quantity: &str, at_ms: i64) -> 
 /// Claims every pending bucket (as worker `w`) and indexes them by (area, quantity, start).
 async fn claim_all(store: &AnyStore, now_ms: i64) -> HashMap<(String, String, i64), ClaimedBucket> {
     store
-        .claim_buckets("w", now_ms, 1_000, STALE_MS)
+        .claim_buckets("w", now_ms, 1_000, STALE_MS, 0)
         .await
         .expect("claim")
         .into_iter()
@@ -870,7 +988,7 @@ async fn claim_then_store_result_removes_the_bucket(store: &AnyStore, _database:
         .expect("second batch");
 
     let first = store
-        .claim_buckets("w1", NOW_MS + 100, 1, STALE_MS)
+        .claim_buckets("w1", NOW_MS + 100, 1, STALE_MS, 0)
         .await
         .expect("claim");
     // Oldest mark first, and only as many as asked for.
@@ -884,14 +1002,14 @@ async fn claim_then_store_result_removes_the_bucket(store: &AnyStore, _database:
     assert_eq!(bucket.claimed_by, "w1");
 
     let rest = store
-        .claim_buckets("w2", NOW_MS + 100, 10, STALE_MS)
+        .claim_buckets("w2", NOW_MS + 100, 10, STALE_MS, 0)
         .await
         .expect("claim the rest");
     // The first bucket's claim is fresh, so only the second bucket is left to claim.
     assert_eq!(rest.len(), 1);
     assert_eq!(rest[0].bucket_start_ms, BASE_MS + INTERVAL_MS);
     assert!(store
-        .claim_buckets("w3", NOW_MS + 100, 10, STALE_MS)
+        .claim_buckets("w3", NOW_MS + 100, 10, STALE_MS, 0)
         .await
         .expect("nothing left")
         .is_empty());
@@ -929,7 +1047,7 @@ async fn bucket_marked_again_during_computation_stays_pending(
         .await
         .expect("batch");
     let claimed = store
-        .claim_buckets("w1", NOW_MS, 10, STALE_MS)
+        .claim_buckets("w1", NOW_MS, 10, STALE_MS, 0)
         .await
         .expect("claim");
     assert_eq!(claimed.len(), 1);
@@ -951,7 +1069,7 @@ async fn bucket_marked_again_during_computation_stays_pending(
 
     // The claim was released, so it can be claimed again at once, well inside STALE_MS.
     let again = store
-        .claim_buckets("w2", NOW_MS + 3, 10, STALE_MS)
+        .claim_buckets("w2", NOW_MS + 3, 10, STALE_MS, 0)
         .await
         .expect("claim again");
     assert_eq!(again.len(), 1);
@@ -974,20 +1092,20 @@ async fn stale_claim_is_taken_over_and_fresh_one_is_not(
         .expect("batch");
     let claimed_at = NOW_MS + 1_000;
     let first = store
-        .claim_buckets("crashed", claimed_at, 10, STALE_MS)
+        .claim_buckets("crashed", claimed_at, 10, STALE_MS, 0)
         .await
         .expect("claim");
     assert_eq!(first.len(), 1);
     // A claim is stale when it is older than STALE_MS. At exactly STALE_MS it is not yet.
     for now_ms in [claimed_at + 1, claimed_at + STALE_MS] {
         let taken = store
-            .claim_buckets("rescuer", now_ms, 10, STALE_MS)
+            .claim_buckets("rescuer", now_ms, 10, STALE_MS, 0)
             .await
             .expect("claim");
         assert!(taken.is_empty(), "claim taken over at {now_ms}");
     }
     let taken = store
-        .claim_buckets("rescuer", claimed_at + STALE_MS + 1, 10, STALE_MS)
+        .claim_buckets("rescuer", claimed_at + STALE_MS + 1, 10, STALE_MS, 0)
         .await
         .expect("claim");
     assert_eq!(taken.len(), 1);
@@ -1028,7 +1146,7 @@ async fn concurrent_claimers_never_share_a_bucket(_store: &AnyStore, database: &
             let mut mine = Vec::new();
             loop {
                 let claimed = store
-                    .claim_buckets(worker, NOW_MS + 1, 7, STALE_MS)
+                    .claim_buckets(worker, NOW_MS + 1, 7, STALE_MS, 0)
                     .await
                     .expect("claim");
                 if claimed.is_empty() {
@@ -1187,7 +1305,7 @@ async fn result_revisions_grow_and_earlier_ones_stay_readable(
         .await
         .expect("batch");
     let bucket = store
-        .claim_buckets("w", NOW_MS, 1, STALE_MS)
+        .claim_buckets("w", NOW_MS, 1, STALE_MS, 0)
         .await
         .expect("claim")
         .remove(0);
@@ -2083,7 +2201,7 @@ async fn real_interval_decision_round_trip(store: &AnyStore, _database: &TestDat
     }
     store.insert_batch(&batch, NOW_MS).await.expect("batch");
     let bucket = store
-        .claim_buckets("w", NOW_MS, 10, STALE_MS)
+        .claim_buckets("w", NOW_MS, 10, STALE_MS, 0)
         .await
         .expect("claim")
         .remove(0);
@@ -2175,4 +2293,60 @@ fn sorted_records(outcome: &IntervalOutcome) -> Vec<SetAside> {
     let mut records = outcome.set_aside.clone();
     records.sort_by_key(|record| (record.observed_at_ms, record.reading_id));
     records
+}
+
+/// The worker's two claim policies of our own: an interval that has not ended yet is held back
+/// until `open_refresh_ms` have passed since its first mark (re-marks do not restart that wait), and
+/// `release_claims` hands a failed step's buckets back at once instead of after the stale time.
+async fn open_intervals_wait_for_their_refresh_and_released_claims_return(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network_of(store, 2).await;
+    const REFRESH_MS: i64 = 30_000;
+    // The interval [BASE, BASE + 10 min) is open until BASE + 10 min; the one before has ended.
+    let marked = BASE_MS + 60_000;
+    store
+        .insert_batch(
+            &[
+                reading("ST-1", "air_temperature", BASE_MS - INTERVAL_MS, 12.0),
+                reading("ST-1", "air_temperature", BASE_MS, 13.0),
+            ],
+            marked,
+        )
+        .await
+        .expect("first batch");
+    // Marked again 20 s later: the wait still counts from the first mark.
+    store
+        .insert_batch(
+            &[reading("ST-2", "air_temperature", BASE_MS + 60_000, 13.1)],
+            marked + 20_000,
+        )
+        .await
+        .expect("second batch");
+    let early = store
+        .claim_buckets("w1", marked + 25_000, 10, STALE_MS, REFRESH_MS)
+        .await
+        .expect("early claim");
+    let starts: Vec<i64> = early.iter().map(|bucket| bucket.bucket_start_ms).collect();
+    assert_eq!(starts, [BASE_MS - INTERVAL_MS], "only the ended interval");
+    let later = store
+        .claim_buckets("w1", marked + REFRESH_MS, 10, STALE_MS, REFRESH_MS)
+        .await
+        .expect("claim after the refresh");
+    let starts: Vec<i64> = later.iter().map(|bucket| bucket.bucket_start_ms).collect();
+    assert_eq!(
+        starts,
+        [BASE_MS],
+        "the open interval, once its refresh period has passed"
+    );
+
+    // A failed step: w1 hands its two claims back and another worker takes them at once.
+    assert_eq!(store.release_claims("w1").await.expect("release"), 2);
+    assert_eq!(store.release_claims("w1").await.expect("release again"), 0);
+    let taken = store
+        .claim_buckets("w2", marked + REFRESH_MS + 1, 10, STALE_MS, REFRESH_MS)
+        .await
+        .expect("claim released buckets");
+    assert_eq!(taken.len(), 2);
 }

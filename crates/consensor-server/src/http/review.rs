@@ -22,7 +22,7 @@ use super::params::{check_range, invalid_param, Params, RawPairs};
 use super::results::find_area;
 use super::rfc3339;
 use crate::auth::{Caller, ReadAccess, Role};
-use crate::error::{ApiError, ApiJson, Detail};
+use crate::error::{ApiError, ApiJson};
 use crate::state::AppState;
 
 /// API.md: `limit` defaults to 100 and must be a whole number from 1 to 1000.
@@ -42,7 +42,7 @@ pub fn router() -> Router<AppState> {
 /// The wire form of one set-aside record (API.md `SetAside`), plus the interval it was judged in,
 /// the revision of that interval's result, and the station's interval value that a
 /// `far_from_consensus` score was computed on.
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct SetAsideOut {
     reading_id: i64,
     station: String,
@@ -65,7 +65,7 @@ struct SetAsideOut {
     station_value: Option<f64>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct ReviewOut {
     state: &'static str,
     by: Option<String>,
@@ -73,14 +73,14 @@ struct ReviewOut {
     note: Option<String>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct SetAsidePage {
     items: Vec<SetAsideOut>,
     next_cursor: Option<String>,
 }
 
 /// One audit log entry, which is also the answer to a review decision.
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct AuditEntryOut {
     id: i64,
     reading_id: i64,
@@ -93,13 +93,13 @@ struct AuditEntryOut {
     at: String,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct AuditPage {
     items: Vec<AuditEntryOut>,
     next_cursor: Option<String>,
 }
 
-#[derive(Deserialize)]
+#[derive(Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 struct ReviewBody {
     decision: String,
@@ -169,6 +169,31 @@ async fn check_station(state: &AppState, name: &str, key: &str) -> Result<(), Ap
     }
 }
 
+#[utoipa::path(
+    get,
+    path = "/v1/set-aside",
+    tag = "review",
+    summary = "Readings set aside by the checks",
+    description = "Each with its rule, a reason an operator can check by hand, the statistic and \
+        its limit, and its review. Pages of `limit` items; pass `next_cursor` back as `cursor`. \
+        Role: reader (or none with `public_read = true`).",
+    params(
+        ("area" = Option<String>, Query, description = "Area id."),
+        ("station" = Option<String>, Query, description = "Station id."),
+        ("quantity" = Option<String>, Query, description = "A quantity of the table in force."),
+        ("from" = Option<String>, Query, description = "RFC 3339, inclusive, on the observation time."),
+        ("to" = Option<String>, Query, description = "RFC 3339, exclusive, on the observation time."),
+        ("review" = Option<String>, Query, description = "`pending`, `upheld` or `overturned`."),
+        ("limit" = Option<i64>, Query, description = "1 to 1000; 100 when left out."),
+        ("cursor" = Option<String>, Query, description = "The previous page's `next_cursor`."),
+    ),
+    security((), ("bearer" = [])),
+    responses(
+        (status = 200, description = "One page.", body = SetAsidePage),
+        (status = 400, description = "The query string cannot be parsed.", body = crate::http::ErrorBody),
+        (status = 422, description = "An unknown or invalid parameter (an unknown area or station included).", body = crate::http::ErrorBody),
+    )
+)]
 async fn list_set_aside(
     _: ReadAccess,
     State(state): State<AppState>,
@@ -247,14 +272,25 @@ async fn list_set_aside(
     }))
 }
 
-fn invalid_body(field: &str, reason: String) -> ApiError {
-    ApiError::invalid(format!("{field}: {reason}")).with_details(vec![Detail {
-        index: None,
-        field: field.into(),
-        reason,
-    }])
-}
-
+#[utoipa::path(
+    post,
+    path = "/v1/set-aside/{reading_id}/review",
+    tag = "review",
+    summary = "Uphold or overturn a set-aside reading",
+    description = "An overturned reading is used again, and its interval is recomputed at once into \
+        a new revision. Every decision is kept in the audit log. Role: operator or admin.",
+    params(("reading_id" = i64, Path, description = "The reading id of a set-aside record.")),
+    request_body = ReviewBody,
+    security(("bearer" = [])),
+    responses(
+        (status = 200, description = "Recorded: the audit log entry.", body = AuditEntryOut),
+        (status = 400, description = "The reading id is not a positive whole number, or the body is not well-formed JSON.", body = crate::http::ErrorBody),
+        (status = 404, description = "No result ever set this reading aside.", body = crate::http::ErrorBody),
+        (status = 413, description = "The body is over the size limit.", body = crate::http::ErrorBody),
+        (status = 415, description = "The body is not `application/json`.", body = crate::http::ErrorBody),
+        (status = 422, description = "A decision other than uphold or overturn, a note over 2000 characters, or an unknown field.", body = crate::http::ErrorBody),
+    )
+)]
 async fn review(
     caller: Caller,
     State(state): State<AppState>,
@@ -284,7 +320,7 @@ async fn review(
         }
     };
     let decision = ReviewDecision::parse(&body.decision).ok_or_else(|| {
-        invalid_body(
+        ApiError::invalid_field(
             "decision",
             format!("{:?} is not one of uphold, overturn", body.decision),
         )
@@ -295,13 +331,14 @@ async fn review(
         .map(str::trim)
         .filter(|n| !n.is_empty());
     if note.is_some_and(|n| n.chars().count() > MAX_NOTE_CHARS) {
-        return Err(invalid_body(
+        return Err(ApiError::invalid_field(
             "note",
             format!("must be at most {MAX_NOTE_CHARS} characters"),
         ));
     }
     // The store appends the decision to the audit log and marks the reading's interval pending in
-    // one transaction, so the worker computes a new revision that applies it.
+    // one transaction; the interval is then recomputed here, before the answer, so that the next
+    // read already shows the revision that applies the decision.
     let record = state
         .store
         .review_reading(
@@ -318,9 +355,41 @@ async fn review(
         by = %caller.token_id,
         "review recorded"
     );
+    if let Err(error) =
+        crate::worker::compute_interval_of_reading(&state, &state.config.worker, reading_id).await
+    {
+        // The decision is stored and its interval marked: the worker's next poll applies it.
+        tracing::warn!(
+            reading_id,
+            error = format!("{error:#}"),
+            "could not recompute the reviewed interval at once; the worker will"
+        );
+    }
     Ok(Json(AuditEntryOut::from(record)))
 }
 
+#[utoipa::path(
+    get,
+    path = "/v1/audit",
+    tag = "review",
+    summary = "The audit log of review decisions",
+    description = "Newest first. Pages of `limit` items; pass `next_cursor` back as `cursor`. \
+        Role: reader (or none with `public_read = true`).",
+    params(
+        ("reading_id" = Option<i64>, Query, description = "One reading's decisions."),
+        ("station" = Option<String>, Query, description = "Station id."),
+        ("from" = Option<String>, Query, description = "RFC 3339, inclusive, on the decision time."),
+        ("to" = Option<String>, Query, description = "RFC 3339, exclusive, on the decision time."),
+        ("limit" = Option<i64>, Query, description = "1 to 1000; 100 when left out."),
+        ("cursor" = Option<String>, Query, description = "The previous page's `next_cursor`."),
+    ),
+    security((), ("bearer" = [])),
+    responses(
+        (status = 200, description = "One page.", body = AuditPage),
+        (status = 400, description = "The query string cannot be parsed.", body = crate::http::ErrorBody),
+        (status = 422, description = "An unknown or invalid parameter.", body = crate::http::ErrorBody),
+    )
+)]
 async fn audit(
     _: ReadAccess,
     State(state): State<AppState>,
