@@ -4,11 +4,13 @@
 //! `cargo run --release -p consensor-bench -- core [--quick]`
 //! `cargo run --release -p consensor-bench -- ingest [--quick]` (PostgreSQL too when
 //! `CONSENSOR_TEST_POSTGRES_URL` is set)
+//! `cargo run --release -p consensor-bench -- worker [--quick] [--postgres]`
 
 mod core_bench;
 mod ingest_bench;
 mod machine;
 mod synthetic;
+mod worker_bench;
 
 use stats_alloc::{StatsAlloc, INSTRUMENTED_SYSTEM};
 use std::alloc::System;
@@ -26,8 +28,28 @@ fn main() -> anyhow::Result<()> {
             .enable_all()
             .build()?
             .block_on(ingest_bench::run(quick)),
+        Some("worker") => {
+            let shape = if quick {
+                worker_bench::Shape {
+                    areas: 4,
+                    stations_per_area: 50,
+                    minutes: 1440,
+                }
+            } else {
+                worker_bench::Shape {
+                    areas: 40,
+                    stations_per_area: 50,
+                    minutes: 5040,
+                }
+            };
+            let postgres = args.iter().any(|a| a == "--postgres");
+            tokio::runtime::Builder::new_multi_thread()
+                .enable_all()
+                .build()?
+                .block_on(worker_bench::run(shape, postgres))
+        }
         _ => {
-            eprintln!("usage: consensor-bench core|ingest [--quick]");
+            eprintln!("usage: consensor-bench core|ingest|worker [--quick] [--postgres]");
             std::process::exit(2);
         }
     }
