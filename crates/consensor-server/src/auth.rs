@@ -191,9 +191,12 @@ impl FromRequestParts<AppState> for Caller {
         let token = bearer(parts)?.ok_or_else(|| {
             ApiError::unauthenticated("this needs a token: send `Authorization: Bearer <token>`")
         })?;
-        resolve(state, token)
+        let caller = resolve(state, token)
             .await?
-            .ok_or_else(|| ApiError::unauthenticated("the token is unknown or has been revoked"))
+            .ok_or_else(|| ApiError::unauthenticated("the token is unknown or has been revoked"))?;
+        // Budgets are kept per token id, never per token text (`[rate_limit]`).
+        crate::rate_limit::check_token(parts, &caller.token_id)?;
+        Ok(caller)
     }
 }
 
@@ -206,6 +209,8 @@ impl FromRequestParts<AppState> for ReadAccess {
 
     async fn from_request_parts(parts: &mut Parts, state: &AppState) -> Result<Self, ApiError> {
         if state.config.public_read && bearer(parts)?.is_none() {
+            // Anonymous readers have no token id: their budget is kept per peer address.
+            crate::rate_limit::check_anonymous(parts)?;
             return Ok(ReadAccess);
         }
         let caller = Caller::from_request_parts(parts, state).await?;

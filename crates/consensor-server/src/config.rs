@@ -49,6 +49,36 @@ pub struct Config {
     pub rules: Rules,
     pub quantities: Vec<QuantitySpec>,
     pub worker: crate::worker::WorkerSettings,
+    /// `[metrics] listen`: when set, `/metrics` is served on this address only (without a token)
+    /// and not on the main listener.
+    pub metrics_listen: Option<SocketAddr>,
+    /// `[log] format`: human-readable text lines or one JSON object per line.
+    pub log_format: LogFormat,
+    /// `header_limit_bytes`: the most bytes of header fields one request may carry (431 beyond).
+    pub header_limit_bytes: usize,
+    /// `[rate_limit]`: per-token (and per-peer for anonymous reads) request budgets.
+    pub rate_limit: crate::rate_limit::RateLimitSettings,
+}
+
+/// How log lines are written (to standard error).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum LogFormat {
+    /// Human-readable lines, the default.
+    #[default]
+    Text,
+    /// One JSON object per line (timestamp, level, target, message and fields), for log shippers.
+    Json,
+}
+
+impl LogFormat {
+    /// `"text"` or `"json"`.
+    pub fn parse(text: &str) -> Option<LogFormat> {
+        match text {
+            "text" => Some(LogFormat::Text),
+            "json" => Some(LogFormat::Json),
+            _ => None,
+        }
+    }
 }
 
 impl Config {
@@ -101,7 +131,7 @@ fn env_value(path: &[String], value: &str) -> toml::Value {
     let always_string = matches!(
         path.first().map(String::as_str),
         Some("admin_token" | "database_url" | "listen")
-    );
+    ) || path == ["metrics", "listen"];
     if !always_string {
         if let Ok(table) = toml::from_str::<toml::Table>(&format!("v = {value}")) {
             if let Some(parsed) = table.get("v") {
@@ -174,6 +204,77 @@ struct RawConfig {
     quantities: BTreeMap<String, RawQuantity>,
     #[serde(default)]
     worker: RawWorker,
+    #[serde(default)]
+    metrics: RawMetrics,
+    #[serde(default)]
+    log: RawLog,
+    #[serde(default = "default_header_limit")]
+    header_limit_bytes: usize,
+    #[serde(default)]
+    rate_limit: RawRateLimit,
+}
+
+/// `[rate_limit]`: off unless `requests_per_second` is set.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawRateLimit {
+    #[serde(default)]
+    requests_per_second: Option<f64>,
+    #[serde(default)]
+    burst: Option<f64>,
+}
+
+fn default_header_limit() -> usize {
+    32 * 1024
+}
+
+impl RawRateLimit {
+    fn validate(self) -> anyhow::Result<crate::rate_limit::RateLimitSettings> {
+        if let Some(rate) = self.requests_per_second {
+            if !(rate > 0.0 && rate.is_finite()) {
+                bail!("rate_limit.requests_per_second: {rate} must be a positive number");
+            }
+        }
+        let burst = self.burst.unwrap_or(crate::rate_limit::DEFAULT_BURST);
+        if !(burst >= 1.0 && burst.is_finite()) {
+            bail!("rate_limit.burst: {burst} must be a number of at least 1");
+        }
+        if self.burst.is_some() && self.requests_per_second.is_none() {
+            bail!("rate_limit.burst: set requests_per_second too, or leave both out (no limit)");
+        }
+        Ok(crate::rate_limit::RateLimitSettings {
+            requests_per_second: self.requests_per_second,
+            burst,
+        })
+    }
+}
+
+/// `[metrics]`: where `/metrics` is served.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawMetrics {
+    #[serde(default)]
+    listen: Option<String>,
+}
+
+/// `[log]`: how log lines are written.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawLog {
+    #[serde(default = "default_log_format")]
+    format: String,
+}
+
+impl Default for RawLog {
+    fn default() -> Self {
+        RawLog {
+            format: default_log_format(),
+        }
+    }
+}
+
+fn default_log_format() -> String {
+    "text".into()
 }
 
 /// The consensus worker's settings.
@@ -190,6 +291,8 @@ struct RawWorker {
     history_minutes: f64,
     #[serde(default = "default_poll")]
     poll_interval_seconds: f64,
+    #[serde(default = "default_open_refresh")]
+    open_interval_refresh_seconds: f64,
 }
 
 impl Default for RawWorker {
@@ -200,6 +303,7 @@ impl Default for RawWorker {
             stale_claim_seconds: default_stale_after(),
             history_minutes: default_history(),
             poll_interval_seconds: default_poll(),
+            open_interval_refresh_seconds: default_open_refresh(),
         }
     }
 }
@@ -220,6 +324,11 @@ fn default_history() -> f64 {
         .history
         .as_secs_f64()
         / 60.0
+}
+fn default_open_refresh() -> f64 {
+    crate::worker::WorkerSettings::default()
+        .open_interval_refresh
+        .as_secs_f64()
 }
 fn default_poll() -> f64 {
     crate::worker::WorkerSettings::default()
@@ -302,6 +411,13 @@ impl RawConfig {
                 self.body_limit_bytes
             );
         }
+        if self.header_limit_bytes < 1024 {
+            bail!(
+                "header_limit_bytes: {} is too small (at least 1024)",
+                self.header_limit_bytes
+            );
+        }
+        let rate_limit = self.rate_limit.validate()?;
         if self.max_readings_per_batch == 0 {
             bail!("max_readings_per_batch: must be at least 1");
         }
@@ -327,6 +443,21 @@ impl RawConfig {
             rules.missing_codes = codes;
         }
         let quantities = build_quantities(self.quantities)?;
+        let metrics_listen = self
+            .metrics
+            .listen
+            .map(|text| {
+                text.parse::<SocketAddr>().with_context(|| {
+                    format!("metrics.listen: {text:?} is not an address such as 127.0.0.1:9090")
+                })
+            })
+            .transpose()?;
+        let log_format = LogFormat::parse(&self.log.format).with_context(|| {
+            format!(
+                "log.format: {:?} is not one of \"text\", \"json\"",
+                self.log.format
+            )
+        })?;
         if self.worker.claim_batch == 0 {
             bail!("worker.claim_batch: must be at least 1");
         }
@@ -350,6 +481,10 @@ impl RawConfig {
                 "worker.poll_interval_seconds",
                 self.worker.poll_interval_seconds,
             )?,
+            open_interval_refresh: seconds(
+                "worker.open_interval_refresh_seconds",
+                self.worker.open_interval_refresh_seconds,
+            )?,
         };
         Ok(Config {
             listen,
@@ -365,6 +500,10 @@ impl RawConfig {
             rules,
             quantities,
             worker,
+            metrics_listen,
+            log_format,
+            header_limit_bytes: self.header_limit_bytes,
+            rate_limit,
         })
     }
 }
@@ -548,6 +687,95 @@ mod tests {
         let from_file = Config::load(Some(&example), env(&[]), &[]).unwrap();
         let defaults = Config::load(None, env(&[]), &[]).unwrap();
         assert_eq!(format!("{from_file:?}"), format!("{defaults:?}"));
+    }
+
+    #[test]
+    fn metrics_listener_and_log_format() {
+        // Defaults: /metrics on the main listener, text logs.
+        let config = Config::load(None, env(&[]), &[]).unwrap();
+        assert_eq!(config.metrics_listen, None);
+        assert_eq!(config.log_format, LogFormat::Text);
+        // From a file ...
+        let directory = tempfile::tempdir().unwrap();
+        let file = directory.path().join("consensor.toml");
+        std::fs::write(
+            &file,
+            "[metrics]\nlisten = \"127.0.0.1:9090\"\n[log]\nformat = \"json\"\n",
+        )
+        .unwrap();
+        let config = Config::load(Some(&file), env(&[]), &[]).unwrap();
+        assert_eq!(
+            config.metrics_listen,
+            Some("127.0.0.1:9090".parse().unwrap())
+        );
+        assert_eq!(config.log_format, LogFormat::Json);
+        // ... and from the environment, nested keys joined by `__`, which win over the file.
+        let config = Config::load(
+            Some(&file),
+            env(&[
+                ("CONSENSOR_METRICS__LISTEN", "[::1]:9191"),
+                ("CONSENSOR_LOG__FORMAT", "text"),
+            ]),
+            &[],
+        )
+        .unwrap();
+        assert_eq!(config.metrics_listen, Some("[::1]:9191".parse().unwrap()));
+        assert_eq!(config.log_format, LogFormat::Text);
+        // Bad values name their key.
+        let error = Config::load(None, env(&[("CONSENSOR_LOG__FORMAT", "xml")]), &[]).unwrap_err();
+        assert!(format!("{error:#}").contains("log.format"), "{error:#}");
+        let error =
+            Config::load(None, env(&[("CONSENSOR_METRICS__LISTEN", "9090")]), &[]).unwrap_err();
+        assert!(format!("{error:#}").contains("metrics.listen"), "{error:#}");
+    }
+
+    #[test]
+    fn rate_limits_and_header_limit() {
+        // Defaults: no rate limit, 32 KiB of header fields.
+        let config = Config::load(None, env(&[]), &[]).unwrap();
+        assert_eq!(config.rate_limit.requests_per_second, None);
+        assert_eq!(config.header_limit_bytes, 32 * 1024);
+        let config = Config::load(
+            None,
+            env(&[
+                ("CONSENSOR_RATE_LIMIT__REQUESTS_PER_SECOND", "20"),
+                ("CONSENSOR_RATE_LIMIT__BURST", "40"),
+                ("CONSENSOR_HEADER_LIMIT_BYTES", "8192"),
+            ]),
+            &[],
+        )
+        .unwrap();
+        assert_eq!(config.rate_limit.requests_per_second, Some(20.0));
+        assert_eq!(config.rate_limit.burst, 40.0);
+        assert_eq!(config.header_limit_bytes, 8192);
+        // Bad values name their key.
+        for (key, value, named) in [
+            (
+                "CONSENSOR_RATE_LIMIT__REQUESTS_PER_SECOND",
+                "0",
+                "rate_limit.requests_per_second",
+            ),
+            ("CONSENSOR_RATE_LIMIT__BURST", "0.5", "rate_limit.burst"),
+            ("CONSENSOR_HEADER_LIMIT_BYTES", "10", "header_limit_bytes"),
+        ] {
+            let error = Config::load(
+                None,
+                env(&[
+                    ("CONSENSOR_RATE_LIMIT__REQUESTS_PER_SECOND", "5"),
+                    (key, value),
+                ]),
+                &[],
+            )
+            .unwrap_err();
+            assert!(format!("{error:#}").contains(named), "{error:#}");
+        }
+        // A burst without a rate would silently do nothing: refused.
+        let error =
+            Config::load(None, env(&[("CONSENSOR_RATE_LIMIT__BURST", "10")]), &[]).unwrap_err();
+        assert!(
+            format!("{error:#}").contains("rate_limit.burst"),
+            "{error:#}"
+        );
     }
 
     #[test]

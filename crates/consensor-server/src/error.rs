@@ -7,12 +7,22 @@ use consensor_store::StoreError;
 use serde::Serialize;
 
 /// One bad field of one reading (or of a request body), for `details`.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, utoipa::ToSchema)]
 pub struct Detail {
     #[serde(skip_serializing_if = "Option::is_none")]
     pub index: Option<usize>,
     pub field: String,
     pub reason: String,
+}
+
+/// What an error answer said, attached to the response's extensions so that middleware (the metrics
+/// layer) can count refusals by their machine code and fields without parsing the body.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ErrorSummary {
+    /// The machine code (`error` of the body).
+    pub code: &'static str,
+    /// `(index, field)` of each entry of `details`.
+    pub details: Vec<(Option<usize>, String)>,
 }
 
 /// An error answered to a client.
@@ -56,6 +66,25 @@ impl ApiError {
         Self::new(StatusCode::UNPROCESSABLE_ENTITY, "invalid_input", message)
     }
 
+    /// 422 with `message` and one detail naming `field` (no index) and `reason`.
+    pub fn invalid_detail(
+        message: impl Into<String>,
+        field: &str,
+        reason: impl Into<String>,
+    ) -> Self {
+        Self::invalid(message).with_details(vec![Detail {
+            index: None,
+            field: field.to_owned(),
+            reason: reason.into(),
+        }])
+    }
+
+    /// 422 for one bad field of a request body: the message `field: reason`, and the detail.
+    pub fn invalid_field(field: &str, reason: impl Into<String>) -> Self {
+        let reason = reason.into();
+        Self::invalid_detail(format!("{field}: {reason}"), field, reason)
+    }
+
     /// 401: no token, or one that is unknown or revoked.
     pub fn unauthenticated(message: impl Into<String>) -> Self {
         Self::new(StatusCode::UNAUTHORIZED, "unauthenticated", message)
@@ -93,6 +122,30 @@ impl ApiError {
         error
     }
 
+    /// 429 with `Retry-After` (whole seconds): the caller has used up its request budget
+    /// (`[rate_limit]`); nothing was done.
+    pub fn too_many_requests(retry_after_seconds: u64, per_second: f64, burst: f64) -> Self {
+        let mut error = Self::new(
+            StatusCode::TOO_MANY_REQUESTS,
+            "rate_limited",
+            format!(
+                "too many requests: this caller may make {per_second} per second (bursts of up \
+                 to {burst}); nothing was done, try again in {retry_after_seconds} s"
+            ),
+        );
+        error.retry_after_seconds = Some(retry_after_seconds);
+        error
+    }
+
+    /// 431: the request's header fields are larger than `limit_bytes` in all (RFC 6585 §5).
+    pub fn header_fields_too_large(limit_bytes: usize) -> Self {
+        Self::new(
+            StatusCode::REQUEST_HEADER_FIELDS_TOO_LARGE,
+            "header_fields_too_large",
+            format!("the request's header fields are larger than the limit of {limit_bytes} bytes"),
+        )
+    }
+
     /// 500 with an opaque message; the cause is logged, never sent.
     pub fn internal(cause: &dyn std::fmt::Display) -> Self {
         tracing::error!(error = %cause, "internal error");
@@ -105,6 +158,29 @@ impl ApiError {
 
     pub fn status(&self) -> StatusCode {
         self.status
+    }
+
+    /// An error with `status` and a machine code derived from it, for answers that were not made
+    /// as an `ApiError` (a rejection of axum's own extractors, a 405 of its router, the 408 of the
+    /// timeout layer), so that they too carry the contract's body.
+    pub fn from_status(status: StatusCode, message: impl Into<String>) -> Self {
+        let code = match status {
+            StatusCode::BAD_REQUEST => "bad_request",
+            StatusCode::UNAUTHORIZED => "unauthenticated",
+            StatusCode::FORBIDDEN => "forbidden",
+            StatusCode::NOT_FOUND => "not_found",
+            StatusCode::METHOD_NOT_ALLOWED => "method_not_allowed",
+            StatusCode::REQUEST_TIMEOUT => "request_timeout",
+            StatusCode::PAYLOAD_TOO_LARGE => "payload_too_large",
+            StatusCode::UNSUPPORTED_MEDIA_TYPE => "unsupported_media_type",
+            StatusCode::UNPROCESSABLE_ENTITY => "invalid_input",
+            StatusCode::TOO_MANY_REQUESTS => "rate_limited",
+            StatusCode::REQUEST_HEADER_FIELDS_TOO_LARGE => "header_fields_too_large",
+            StatusCode::SERVICE_UNAVAILABLE => "unavailable",
+            status if status.is_server_error() => "internal",
+            _ => "http_error",
+        };
+        Self::new(status, code, message)
     }
 }
 
@@ -124,6 +200,14 @@ impl IntoResponse for ApiError {
             details: &self.details,
         };
         let mut response = (self.status, axum::Json(body)).into_response();
+        response.extensions_mut().insert(ErrorSummary {
+            code: self.code,
+            details: self
+                .details
+                .iter()
+                .map(|detail| (detail.index, detail.field.clone()))
+                .collect(),
+        });
         if let Some(seconds) = self.retry_after_seconds {
             response
                 .headers_mut()

@@ -36,8 +36,28 @@ pub async fn open_state(config: Config, clock: Arc<dyn Clock>) -> anyhow::Result
 /// Serves `state` on `listener`, with the consensus worker beside it, until `shutdown` resolves, then stops accepting connections and
 /// lets requests in flight finish for at most the configured grace period. A batch in flight either
 /// commits before the process exits or is rolled back with its transaction: never half-stored.
+/// When the configuration sets `[metrics] listen`, `/metrics` is served on that address too.
 pub async fn run(
     listener: TcpListener,
+    state: AppState,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> anyhow::Result<()> {
+    let metrics_listener = match state.config.metrics_listen {
+        Some(address) => Some(
+            TcpListener::bind(address)
+                .await
+                .with_context(|| format!("could not listen on {address} for metrics"))?,
+        ),
+        None => None,
+    };
+    run_with_metrics_listener(listener, metrics_listener, state, shutdown).await
+}
+
+/// [`run`] with the separate metrics listener already bound (tests bind it on port 0); it serves
+/// `/metrics` without a token until the server and the worker have stopped.
+pub async fn run_with_metrics_listener(
+    listener: TcpListener,
+    metrics_listener: Option<TcpListener>,
     state: AppState,
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> anyhow::Result<()> {
@@ -48,6 +68,25 @@ pub async fn run(
     let store = state.store.clone();
     // The consensus worker runs beside the server and stops with it.
     let (stop_worker, worker_stop) = tokio::sync::watch::channel(false);
+    let metrics_server = match metrics_listener {
+        Some(metrics_listener) => {
+            let metrics_address = metrics_listener
+                .local_addr()
+                .context("could not read the metrics listening address")?;
+            let mut stop = worker_stop.clone();
+            let app = crate::metrics::listener_app(state.clone());
+            tracing::info!("metrics served on http://{metrics_address}/metrics");
+            println!("metrics served on http://{metrics_address}/metrics");
+            Some(tokio::spawn(async move {
+                axum::serve(metrics_listener, app)
+                    .with_graceful_shutdown(async move {
+                        let _ = stop.wait_for(|stopped| *stopped).await;
+                    })
+                    .await
+            }))
+        }
+        None => None,
+    };
     let worker = tokio::spawn(crate::worker::run(
         state.clone(),
         state.config.worker.clone(),
@@ -58,7 +97,13 @@ pub async fn run(
     // Printed as well as logged, so scripts can wait for it whatever the log settings.
     println!("listening on http://{address}");
     let (drain_started_tx, drain_started_rx) = tokio::sync::oneshot::channel::<()>();
-    let server = axum::serve(listener, router).with_graceful_shutdown(async move {
+    // The peer address goes with each request, so that anonymous public reads are rate-limited
+    // per client address.
+    let server = axum::serve(
+        listener,
+        router.into_make_service_with_connect_info::<std::net::SocketAddr>(),
+    )
+    .with_graceful_shutdown(async move {
         shutdown.await;
         tracing::info!("shutting down: no new connections; draining requests in flight");
         let _ = drain_started_tx.send(());
@@ -79,6 +124,11 @@ pub async fn run(
     let _ = stop_worker.send(true);
     if tokio::time::timeout(grace, worker).await.is_err() {
         tracing::warn!("the worker did not stop within the grace period");
+    }
+    if let Some(metrics_server) = metrics_server {
+        if tokio::time::timeout(grace, metrics_server).await.is_err() {
+            tracing::warn!("the metrics listener did not stop within the grace period");
+        }
     }
     store.close().await;
     Ok(())

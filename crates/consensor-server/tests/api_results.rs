@@ -10,7 +10,7 @@
 
 mod common;
 
-use common::{at, wait_until_computed, TestServer, ADMIN, T0_MS};
+use common::{at, wait_until_computed, TestServer, ADMIN, FAST_WORKER, T0_MS};
 use consensor_store::testing::TestDatabase;
 use reqwest::Method;
 use serde_json::{json, Value};
@@ -21,9 +21,6 @@ on_both_backends!(
     roles_and_recompute,
     station_health_shows_a_planted_drift,
 );
-
-/// The worker polls often in these tests so that they wait milliseconds, not half-seconds.
-const FAST_WORKER: &[(&str, &str)] = &[("CONSENSOR_WORKER__POLL_INTERVAL_SECONDS", "0.05")];
 
 const HOUR_MS: i64 = 3_600_000;
 
@@ -41,24 +38,8 @@ fn reading_at_hour(station: &str, value: f64, hours: i64, minutes: i64) -> Value
     })
 }
 
-async fn post(server: &TestServer, readings: Vec<Value>) {
-    let (status, body) = server
-        .call(
-            Method::POST,
-            "/v1/readings",
-            Some(ADMIN),
-            Some(json!({ "readings": readings })),
-        )
-        .await;
-    assert_eq!(status, 200, "{body}");
-}
-
-async fn get(server: &TestServer, path: &str, token: Option<&str>) -> (u16, Value) {
-    server.call(Method::GET, path, token, None).await
-}
-
 async fn get_ok(server: &TestServer, path: &str) -> Value {
-    let (status, body) = get(server, path, Some(ADMIN)).await;
+    let (status, body) = server.get(path, Some(ADMIN)).await;
     assert_eq!(status, 200, "GET {path}: {body}");
     body
 }
@@ -124,9 +105,8 @@ async fn basin(server: &TestServer) {
     server
         .network("basin", &["S1", "S2", "S3", "S4", "S5", "S6", "S7"])
         .await;
-    post(
-        server,
-        vec![
+    server
+        .post_readings(vec![
             // Interval [T0, T0 + 10 min).
             reading("S1", json!(12.0), 1),
             reading("S2", json!(12.3), 1),
@@ -142,14 +122,13 @@ async fn basin(server: &TestServer) {
             reading("S4", json!(13.9), 11),
             reading("S5", json!(14.2), 11),
             reading("S6", json!(30.0), 11),
-        ],
-    )
-    .await;
+        ])
+        .await;
     wait_until_computed(server).await;
 }
 
 async fn series_latest_and_revisions(database: TestDatabase) {
-    let server = TestServer::start(database, FAST_WORKER).await;
+    let server = TestServer::start(database, &[FAST_WORKER]).await;
     basin(&server).await;
 
     let series = get_ok(
@@ -250,7 +229,9 @@ async fn series_latest_and_revisions(database: TestDatabase) {
     assert_eq!(latest["start"], at(10));
 
     // A late reading for interval 1 makes revision 2; revision 1 stays readable.
-    post(&server, vec![reading("S7", json!(12.7), 5)]).await;
+    server
+        .post_readings(vec![reading("S7", json!(12.7), 5)])
+        .await;
     wait_until_computed(&server).await;
     let revised = get_ok(
         &server,
@@ -314,19 +295,19 @@ async fn series_latest_and_revisions(database: TestDatabase) {
             at(5)
         ),
     ] {
-        let (status, body) = get(&server, &path, Some(ADMIN)).await;
+        let (status, body) = server.get(&path, Some(ADMIN)).await;
         assert_eq!(status, 404, "{path}: {body}");
         assert_eq!(body["error"], "not_found");
     }
-    let (_, body) = get(
-        &server,
-        &format!(
-            "/v1/areas/basin/intervals/{}?quantity=air_temperature",
-            at(5)
-        ),
-        Some(ADMIN),
-    )
-    .await;
+    let (_, body) = server
+        .get(
+            &format!(
+                "/v1/areas/basin/intervals/{}?quantity=air_temperature",
+                at(5)
+            ),
+            Some(ADMIN),
+        )
+        .await;
     assert!(body["message"].as_str().unwrap().contains(&at(0)), "{body}");
 
     // Bad requests name the parameter (API.md error body; 422 for well-formed but invalid input).
@@ -381,7 +362,7 @@ async fn series_latest_and_revisions(database: TestDatabase) {
         ),
         ("/v1/areas/basin/latest".to_owned(), "quantity"),
     ] {
-        let (status, body) = get(&server, &path, Some(ADMIN)).await;
+        let (status, body) = server.get(&path, Some(ADMIN)).await;
         assert_eq!(status, 422, "{path}: {body}");
         assert_eq!(body["error"], "invalid_input", "{path}");
         assert_eq!(body["details"][0]["field"], field, "{path}: {body}");
@@ -392,16 +373,16 @@ async fn series_latest_and_revisions(database: TestDatabase) {
         "/v1/areas/nowhere/latest?quantity=air_temperature".to_owned(),
         "/v1/areas/basin/latest?quantity=relative_humidity".to_owned(),
     ] {
-        let (status, body) = get(&server, &path, Some(ADMIN)).await;
+        let (status, body) = server.get(&path, Some(ADMIN)).await;
         assert_eq!(status, 404, "{path}: {body}");
     }
     // An interval start that is not a time cannot name an interval: 400.
-    let (status, _) = get(
-        &server,
-        "/v1/areas/basin/intervals/not-a-time?quantity=air_temperature",
-        Some(ADMIN),
-    )
-    .await;
+    let (status, _) = server
+        .get(
+            "/v1/areas/basin/intervals/not-a-time?quantity=air_temperature",
+            Some(ADMIN),
+        )
+        .await;
     assert_eq!(status, 400);
     server.stop().await;
 }
@@ -421,7 +402,7 @@ fn reading_ids(page: &Value) -> Vec<i64> {
 }
 
 async fn set_aside_listing_review_and_audit(database: TestDatabase) {
-    let server = TestServer::start(database, FAST_WORKER).await;
+    let server = TestServer::start(database, &[FAST_WORKER]).await;
     basin(&server).await;
     let (operator_id, operator) = server.token("operator", &[]).await;
     let (_, reader) = server.token("reader", &[]).await;
@@ -548,11 +529,13 @@ async fn set_aside_listing_review_and_audit(database: TestDatabase) {
         ("from=noon", "from"),
         ("sort=desc", "sort"),
     ] {
-        let (status, body) = get(&server, &format!("/v1/set-aside?{query}"), Some(ADMIN)).await;
+        let (status, body) = server
+            .get(&format!("/v1/set-aside?{query}"), Some(ADMIN))
+            .await;
         assert_eq!(status, 422, "{query}: {body}");
         assert_eq!(body["details"][0]["field"], field, "{query}: {body}");
     }
-    let (status, body) = get(&server, "/v1/set-aside?limit=1000", Some(&reader)).await;
+    let (status, body) = server.get("/v1/set-aside?limit=1000", Some(&reader)).await;
     assert_eq!(status, 200, "{body}");
 
     // Reviews: operator or admin only, a known decision, no unknown fields, a reading once set aside.
@@ -627,11 +610,13 @@ async fn set_aside_listing_review_and_audit(database: TestDatabase) {
     assert_eq!(record["note"], "mast checked, the sensor is fine");
     let review_id = record["id"].as_i64().unwrap();
 
-    // The decision is in the audit log at once, and the worker recomputes the interval.
+    // The decision is in the audit log at once, and the interval was recomputed before the
+    // answer (API.md: "recomputed at once"): nothing is pending and the next read, made without
+    // waiting for the worker, is the new revision.
     let log = get_ok(&server, "/v1/audit").await;
     assert_eq!(log["items"].as_array().unwrap().len(), 1);
     assert_eq!(log["items"][0], record);
-    wait_until_computed(&server).await;
+    assert_eq!(get_ok(&server, "/v1/status").await["pending_intervals"], 0);
     let recomputed = get_ok(
         &server,
         &format!(
@@ -687,7 +672,7 @@ async fn set_aside_listing_review_and_audit(database: TestDatabase) {
         .map(|i| i["decision"].as_str().unwrap())
         .collect();
     assert_eq!(decisions, ["uphold", "overturn"]);
-    let (status, _) = get(&server, "/v1/audit", Some(&reader)).await;
+    let (status, _) = server.get("/v1/audit", Some(&reader)).await;
     assert_eq!(status, 200);
     let first_page = get_ok(&server, "/v1/audit?limit=1").await;
     assert_eq!(first_page["items"][0]["reading_id"], code_id);
@@ -700,14 +685,14 @@ async fn set_aside_listing_review_and_audit(database: TestDatabase) {
     let by_station = get_ok(&server, "/v1/audit?station=S1").await;
     assert!(by_station["items"].as_array().unwrap().is_empty());
     for query in ["limit=0", "cursor=x", "reading_id=minus", "station=NOPE"] {
-        let (status, body) = get(&server, &format!("/v1/audit?{query}"), Some(ADMIN)).await;
+        let (status, body) = server.get(&format!("/v1/audit?{query}"), Some(ADMIN)).await;
         assert_eq!(status, 422, "{query}: {body}");
     }
     server.stop().await;
 }
 
 async fn roles_and_recompute(database: TestDatabase) {
-    let server = TestServer::start(database, FAST_WORKER).await;
+    let server = TestServer::start(database, &[FAST_WORKER]).await;
     basin(&server).await;
     let (_, station) = server.token("station", &["S1"]).await;
     let (_, reader) = server.token("reader", &[]).await;
@@ -730,17 +715,13 @@ async fn roles_and_recompute(database: TestDatabase) {
         "/v1/stations/S1/health?quantity=air_temperature".to_owned(),
     ];
     for path in &reads {
-        assert_eq!(get(&server, path, None).await.0, 401, "{path}");
-        assert_eq!(
-            get(&server, path, Some("not-a-token")).await.0,
-            401,
-            "{path}"
-        );
-        assert_eq!(get(&server, path, Some(&station)).await.0, 403, "{path}");
-        assert_eq!(get(&server, path, Some(&reader)).await.0, 200, "{path}");
-        assert_eq!(get(&server, path, Some(&operator)).await.0, 200, "{path}");
+        assert_eq!(server.get(path, None).await.0, 401, "{path}");
+        assert_eq!(server.get(path, Some("not-a-token")).await.0, 401, "{path}");
+        assert_eq!(server.get(path, Some(&station)).await.0, 403, "{path}");
+        assert_eq!(server.get(path, Some(&reader)).await.0, 200, "{path}");
+        assert_eq!(server.get(path, Some(&operator)).await.0, 200, "{path}");
     }
-    let (_, page) = get(&server, "/v1/set-aside", Some(&reader)).await;
+    let (_, page) = server.get("/v1/set-aside", Some(&reader)).await;
     let reading_id = page["items"][0]["reading_id"].as_i64().unwrap();
     let review = format!("/v1/set-aside/{reading_id}/review");
     for token in [&station, &reader] {
@@ -862,7 +843,7 @@ const DRIFT: [(i64, [f64; 3], f64); 21] = [
 ];
 
 async fn station_health_shows_a_planted_drift(database: TestDatabase) {
-    let server = TestServer::start(database, FAST_WORKER).await;
+    let server = TestServer::start(database, &[FAST_WORKER]).await;
     server.network("valley", &["R1", "R2", "R3", "D1"]).await;
     // "Now" is one hour after the last reading: ingest refuses times more than 10 minutes ahead,
     // and the health window ends now.
@@ -877,7 +858,7 @@ async fn station_health_shows_a_planted_drift(database: TestDatabase) {
     // One missing-data code, alone in its interval: it counts as a reading set aside and gives no
     // station value (so no residual).
     readings.push(reading_at_hour("D1", -999.0, 99, 3));
-    post(&server, readings).await;
+    server.post_readings(readings).await;
     wait_until_computed(&server).await;
 
     // The residuals are D1 − numpy.median([R1, R2, R3, D1]) per interval (API.md "bias"; every
@@ -967,12 +948,12 @@ async fn station_health_shows_a_planted_drift(database: TestDatabase) {
     assert_eq!(quiet["bias"], Value::Null);
 
     // Errors: unknown station 404; `days` outside 1–366 or not whole, or no quantity, 422.
-    let (status, _) = get(
-        &server,
-        "/v1/stations/NOPE/health?quantity=air_temperature",
-        Some(ADMIN),
-    )
-    .await;
+    let (status, _) = server
+        .get(
+            "/v1/stations/NOPE/health?quantity=air_temperature",
+            Some(ADMIN),
+        )
+        .await;
     assert_eq!(status, 404);
     for (query, field) in [
         ("quantity=air_temperature&days=0", "days"),
@@ -981,12 +962,9 @@ async fn station_health_shows_a_planted_drift(database: TestDatabase) {
         ("days=3", "quantity"),
         ("quantity=snow_depth", "quantity"),
     ] {
-        let (status, body) = get(
-            &server,
-            &format!("/v1/stations/D1/health?{query}"),
-            Some(ADMIN),
-        )
-        .await;
+        let (status, body) = server
+            .get(&format!("/v1/stations/D1/health?{query}"), Some(ADMIN))
+            .await;
         assert_eq!(status, 422, "{query}: {body}");
         assert_eq!(body["details"][0]["field"], field, "{query}");
     }

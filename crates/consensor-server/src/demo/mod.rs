@@ -61,17 +61,7 @@ impl DemoOptions {
         };
         let mut rest = args.iter();
         while let Some(flag) = rest.next() {
-            let (name, inline) = match flag.split_once('=') {
-                Some((name, value)) => (name, Some(value.to_owned())),
-                None => (flag.as_str(), None),
-            };
-            let value = match inline {
-                Some(value) => value,
-                None => rest
-                    .next()
-                    .cloned()
-                    .with_context(|| format!("{name} needs a value"))?,
-            };
+            let (name, value) = crate::cli::option_value(flag, &mut rest)?;
             match name {
                 "--listen" => options.listen = Some(value),
                 "--database" => options.database = Some(PathBuf::from(value)),
@@ -341,11 +331,13 @@ pub async fn load(
 /// meant to run on comfortably; each claims its own intervals under its own name, as replicas do.
 const STEPPERS: usize = 2;
 
-/// The worker settings of stepper `index`: the configured ones under a name of its own.
+/// The worker settings of stepper `index`: the configured ones under a name of its own, and
+/// computing the interval in progress at once too (the demo computes everything before it serves).
 fn stepper_settings(state: &AppState, index: usize) -> WorkerSettings {
     let base = &state.config.worker;
     WorkerSettings {
         worker_id: format!("{}-demo-{index}", base.worker_id),
+        open_interval_refresh: std::time::Duration::ZERO,
         ..base.clone()
     }
 }
@@ -755,7 +747,12 @@ fn try_it(scenario: &Scenario, address: &str, token: &str) -> String {
         text,
         "\nAdmin token (shown once; only its hash is stored in the demo database):\n  {token}\n"
     );
-    let _ = writeln!(text, "Try (in another terminal):");
+    let _ = writeln!(
+        text,
+        "Open {base}/ in a browser and paste the token into \"Access token\": the overview, each \
+         area's charts (set-aside readings are the markers), the review queue and the stations."
+    );
+    let _ = writeln!(text, "\nOr try the API (in another terminal):");
     let _ = writeln!(text, "  T={token}");
     let auth = "-H \"Authorization: Bearer $T\"";
     let fault_start = |kind: FaultKind| {

@@ -57,7 +57,7 @@ pub fn router() -> Router<AppState> {
     Router::new().route("/v1/stations/{station}/health", get(health))
 }
 
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, utoipa::ToSchema)]
 struct HealthOut {
     station: String,
     quantity: String,
@@ -79,7 +79,7 @@ struct HealthOut {
     last_seen: Option<String>,
 }
 
-#[derive(Debug, Default, Serialize)]
+#[derive(Debug, Default, Serialize, utoipa::ToSchema)]
 struct Calibration {
     gain: Option<f64>,
     offset: Option<f64>,
@@ -94,6 +94,27 @@ struct Fits {
     calibration: Calibration,
 }
 
+#[utoipa::path(
+    get,
+    path = "/v1/stations/{station}/health",
+    tag = "health",
+    summary = "How a station compares with its area",
+    description = "Over the last `days`: readings and set-aside counts, bias (median of station \
+        value minus area median), Theil-Sen drift per day with its 95 % interval, and a \
+        least-absolute-deviations calibration line. Role: reader (or none with `public_read = true`).",
+    params(
+        ("station" = String, Path, description = "Station id."),
+        ("quantity" = String, Query, description = "A quantity of the table in force."),
+        ("days" = Option<i64>, Query, description = "1 to 366; 30 when left out."),
+    ),
+    security((), ("bearer" = [])),
+    responses(
+        (status = 200, description = "The report.", body = HealthOut),
+        (status = 400, description = "The query string cannot be parsed.", body = crate::http::ErrorBody),
+        (status = 404, description = "Unknown station.", body = crate::http::ErrorBody),
+        (status = 422, description = "A missing, unknown or invalid parameter.", body = crate::http::ErrorBody),
+    )
+)]
 async fn health(
     _: ReadAccess,
     State(state): State<AppState>,

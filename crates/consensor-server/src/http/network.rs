@@ -4,12 +4,14 @@ use axum::extract::{Path, State};
 use axum::http::StatusCode;
 use axum::routing::{get, put};
 use axum::{Json, Router};
-use consensor_core::ids::{is_valid_id, IntervalLength};
+use consensor_core::ids::IntervalLength;
 use consensor_store::{NewArea, NewStation, Store};
 use serde::{Deserialize, Serialize};
 
+use super::results::interval_name;
 use crate::auth::{Caller, ReadAccess};
-use crate::error::{ApiError, ApiJson, Detail};
+use crate::error::{ApiError, ApiJson};
+use crate::network_fields::{self, ELEVATION_LIMIT_M, LAT_LIMIT, LON_LIMIT};
 use crate::state::AppState;
 
 pub fn router() -> Router<AppState> {
@@ -21,14 +23,14 @@ pub fn router() -> Router<AppState> {
         .route("/v1/quantities", get(list_quantities))
 }
 
-#[derive(Deserialize)]
+#[derive(Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 struct AreaBody {
     name: String,
     interval: String,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct AreaOut {
     id: String,
     name: String,
@@ -36,33 +38,35 @@ struct AreaOut {
 }
 
 fn check_id(kind: &str, id: &str) -> Result<(), ApiError> {
-    if is_valid_id(id) {
-        Ok(())
-    } else {
-        Err(ApiError::invalid(format!(
-            "{kind} id {id:?} must be 1-64 characters of A-Z a-z 0-9 . _ -"
-        ))
-        .with_details(vec![Detail {
-            index: None,
-            field: kind.to_owned(),
-            reason: "must be 1-64 characters of A-Z a-z 0-9 . _ -".into(),
-        }]))
-    }
+    network_fields::check_id(id).map_err(|reason| {
+        ApiError::invalid_detail(format!("{kind} id {id:?} {reason}"), kind, reason)
+    })
 }
 
 fn check_name(name: &str) -> Result<(), ApiError> {
-    if name.trim().is_empty() || name.chars().count() > 200 {
-        return Err(
-            ApiError::invalid("name must be 1-200 characters").with_details(vec![Detail {
-                index: None,
-                field: "name".into(),
-                reason: "must be 1-200 characters".into(),
-            }]),
-        );
-    }
-    Ok(())
+    network_fields::check_name(name)
+        .map_err(|reason| ApiError::invalid_detail(format!("name {reason}"), "name", reason))
 }
 
+#[utoipa::path(
+    put,
+    path = "/v1/areas/{area}",
+    tag = "network",
+    summary = "Create or update an area",
+    description = "`interval` is one of `1m, 5m, 10m, 15m, 30m, 1h`; intervals are aligned to the \
+        UTC epoch. Role: admin.",
+    params(("area" = String, Path, description = "Area id: 1-64 characters of `[A-Za-z0-9._-]`.")),
+    request_body = AreaBody,
+    security(("bearer" = [])),
+    responses(
+        (status = 200, description = "Updated.", body = AreaOut),
+        (status = 201, description = "Created.", body = AreaOut),
+        (status = 400, description = "The body is not well-formed JSON.", body = crate::http::ErrorBody),
+        (status = 413, description = "The body is over the size limit.", body = crate::http::ErrorBody),
+        (status = 415, description = "The body is not `application/json`.", body = crate::http::ErrorBody),
+        (status = 422, description = "An invalid id, name or interval, or an unknown field.", body = crate::http::ErrorBody),
+    )
+)]
 async fn put_area(
     caller: Caller,
     State(state): State<AppState>,
@@ -73,11 +77,7 @@ async fn put_area(
     check_id("area", &area)?;
     check_name(&body.name)?;
     let interval = IntervalLength::parse(&body.interval).map_err(|error| {
-        ApiError::invalid(error.to_string()).with_details(vec![Detail {
-            index: None,
-            field: "interval".into(),
-            reason: error.to_string(),
-        }])
+        ApiError::invalid_detail(error.to_string(), "interval", error.to_string())
     })?;
     let upserted = state
         .store
@@ -102,11 +102,20 @@ async fn put_area(
     ))
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct AreaList {
     areas: Vec<AreaOut>,
 }
 
+#[utoipa::path(
+    get,
+    path = "/v1/areas",
+    tag = "network",
+    summary = "List the areas",
+    description = "Role: reader (or none with `public_read = true`).",
+    security((), ("bearer" = [])),
+    responses((status = 200, description = "Every area, by id.", body = AreaList))
+)]
 async fn list_areas(
     _: ReadAccess,
     State(state): State<AppState>,
@@ -116,10 +125,7 @@ async fn list_areas(
         areas: areas
             .into_iter()
             .map(|area| AreaOut {
-                interval: IntervalLength::from_millis(area.interval_ms).map_or_else(
-                    || format!("{}ms", area.interval_ms),
-                    |l| l.as_str().to_owned(),
-                ),
+                interval: interval_name(area.interval_ms),
                 id: area.key,
                 name: area.name,
             })
@@ -127,7 +133,7 @@ async fn list_areas(
     }))
 }
 
-#[derive(Deserialize)]
+#[derive(Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 struct StationBody {
     area: String,
@@ -137,7 +143,7 @@ struct StationBody {
     elevation_m: Option<f64>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct StationOut {
     id: String,
     area: String,
@@ -148,21 +154,29 @@ struct StationOut {
 }
 
 fn check_coordinate(field: &str, value: Option<f64>, limit: f64) -> Result<(), ApiError> {
-    match value {
-        Some(v) if !(v.is_finite() && v.abs() <= limit) => {
-            let reason = format!("{v} must be a number from -{limit} to {limit}");
-            Err(
-                ApiError::invalid(format!("{field}: {reason}")).with_details(vec![Detail {
-                    index: None,
-                    field: field.into(),
-                    reason,
-                }]),
-            )
-        }
-        _ => Ok(()),
-    }
+    let Some(v) = value else { return Ok(()) };
+    network_fields::check_coordinate(v, limit)
+        .map_err(|rule| ApiError::invalid_field(field, format!("{v} {rule}")))
 }
 
+#[utoipa::path(
+    put,
+    path = "/v1/stations/{station}",
+    tag = "network",
+    summary = "Create or update a station",
+    description = "The area must exist. `lat`, `lon` and `elevation_m` are optional. Role: admin.",
+    params(("station" = String, Path, description = "Station id: 1-64 characters of `[A-Za-z0-9._-]`.")),
+    request_body = StationBody,
+    security(("bearer" = [])),
+    responses(
+        (status = 200, description = "Updated.", body = StationOut),
+        (status = 201, description = "Created.", body = StationOut),
+        (status = 400, description = "The body is not well-formed JSON.", body = crate::http::ErrorBody),
+        (status = 413, description = "The body is over the size limit.", body = crate::http::ErrorBody),
+        (status = 415, description = "The body is not `application/json`.", body = crate::http::ErrorBody),
+        (status = 422, description = "An invalid id, name or coordinate, an unknown area, or an unknown field.", body = crate::http::ErrorBody),
+    )
+)]
 async fn put_station(
     caller: Caller,
     State(state): State<AppState>,
@@ -173,10 +187,9 @@ async fn put_station(
     check_id("station", &station)?;
     check_id("area", &body.area)?;
     check_name(&body.name)?;
-    check_coordinate("lat", body.lat, 90.0)?;
-    check_coordinate("lon", body.lon, 180.0)?;
-    // The Dead Sea shore to above the highest summit (common practice for a sanity bound).
-    check_coordinate("elevation_m", body.elevation_m, 9000.0)?;
+    check_coordinate("lat", body.lat, LAT_LIMIT)?;
+    check_coordinate("lon", body.lon, LON_LIMIT)?;
+    check_coordinate("elevation_m", body.elevation_m, ELEVATION_LIMIT_M)?;
     let upserted = state
         .store
         .upsert_station(&NewStation {
@@ -189,15 +202,14 @@ async fn put_station(
         })
         .await
         .map_err(|error| match error {
-            consensor_store::StoreError::NotFound(_) => ApiError::invalid(format!(
-                "area {:?} does not exist; create it first with PUT /v1/areas/{}",
-                body.area, body.area
-            ))
-            .with_details(vec![Detail {
-                index: None,
-                field: "area".into(),
-                reason: "unknown area".into(),
-            }]),
+            consensor_store::StoreError::NotFound(_) => ApiError::invalid_detail(
+                format!(
+                    "area {:?} does not exist; create it first with PUT /v1/areas/{}",
+                    body.area, body.area
+                ),
+                "area",
+                "unknown area",
+            ),
             other => other.into(),
         })?;
     let status = if upserted.created {
@@ -218,11 +230,20 @@ async fn put_station(
     ))
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct StationList {
     stations: Vec<StationOut>,
 }
 
+#[utoipa::path(
+    get,
+    path = "/v1/stations",
+    tag = "network",
+    summary = "List the stations",
+    description = "Role: reader (or none with `public_read = true`).",
+    security((), ("bearer" = [])),
+    responses((status = 200, description = "Every station with its area, by id.", body = StationList))
+)]
 async fn list_stations(
     _: ReadAccess,
     State(state): State<AppState>,
@@ -243,7 +264,7 @@ async fn list_stations(
     }))
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct QuantityOut {
     id: String,
     unit: String,
@@ -257,13 +278,24 @@ struct QuantityOut {
     circular: bool,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct QuantityList {
     quantities: Vec<QuantityOut>,
     missing_codes: Vec<f64>,
     far_from_consensus_limit: f64,
 }
 
+#[utoipa::path(
+    get,
+    path = "/v1/quantities",
+    tag = "network",
+    summary = "The quantity table in force",
+    description = "Built-in defaults with the configuration's overrides, the missing-data codes \
+        and the far-from-consensus limit. Units are UCUM case-sensitive codes. Role: reader (or \
+        none with `public_read = true`).",
+    security((), ("bearer" = [])),
+    responses((status = 200, description = "The table.", body = QuantityList))
+)]
 async fn list_quantities(_: ReadAccess, State(state): State<AppState>) -> Json<QuantityList> {
     Json(QuantityList {
         quantities: state

@@ -14,7 +14,7 @@ use axum::extract::rejection::QueryRejection;
 use axum::extract::Query;
 use consensor_core::checks::QuantitySpec;
 
-use crate::error::{ApiError, Detail};
+use crate::error::ApiError;
 use crate::state::AppState;
 
 /// The parsed query string of one request.
@@ -28,11 +28,7 @@ pub type RawPairs = Result<Query<Vec<(String, String)>>, QueryRejection>;
 /// A 422 naming one parameter.
 pub fn invalid_param(name: &str, reason: impl Into<String>) -> ApiError {
     let reason = reason.into();
-    ApiError::invalid(format!("query parameter `{name}`: {reason}")).with_details(vec![Detail {
-        index: None,
-        field: name.to_owned(),
-        reason,
-    }])
+    ApiError::invalid_detail(format!("query parameter `{name}`: {reason}"), name, reason)
 }
 
 impl Params {
@@ -82,6 +78,14 @@ impl Params {
     /// A required RFC 3339 time as epoch milliseconds.
     pub fn required_time(&self, name: &str) -> Result<i64, ApiError> {
         parse_time(name, self.required(name)?)
+    }
+
+    /// The required range `[from, to)` as epoch milliseconds, `to` later than `from`.
+    pub fn required_range(&self) -> Result<(i64, i64), ApiError> {
+        let from_ms = self.required_time("from")?;
+        let to_ms = self.required_time("to")?;
+        check_range(Some(from_ms), Some(to_ms))?;
+        Ok((from_ms, to_ms))
     }
 
     /// A whole number from `min` to `max` inclusive, or `default` when absent.

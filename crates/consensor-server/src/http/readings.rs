@@ -8,8 +8,7 @@ use axum::extract::State;
 use axum::http::{header, HeaderMap, StatusCode};
 use axum::routing::post;
 use axum::{Json, Router};
-use consensor_core::units;
-use consensor_store::{BatchOutcome, NewReading, Store};
+use consensor_store::{BatchOutcome, Store};
 use serde::Serialize;
 
 use crate::auth::Caller;
@@ -21,7 +20,7 @@ pub fn router() -> Router<AppState> {
     Router::new().route("/v1/readings", post(post_readings))
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct Accepted {
     accepted: u64,
     duplicates: u64,
@@ -58,6 +57,36 @@ fn invalid_readings(details: Vec<Detail>) -> ApiError {
     .with_details(details)
 }
 
+#[utoipa::path(
+    post,
+    path = "/v1/readings",
+    tag = "ingest",
+    summary = "Post a batch of readings",
+    description = "Three body formats, chosen by `Content-Type`: JSON `{\"readings\": [...]}`, \
+        NDJSON (one reading object per line) and SenML (RFC 8428; times in seconds since the \
+        epoch). Convertible units are converted; the value and unit as sent are kept. The batch \
+        is atomic: every reading is stored, or none and the answer lists every bad reading by \
+        index, field and reason. Implausible values (such as -999) are not input errors: they are \
+        stored and set aside by the checks. Sending a reading again counts as a duplicate; a \
+        different value for a stored (station, quantity, observed_at) is a new revision. A 200 \
+        means the readings are durably stored. Role: station (for its own stations) or admin.",
+    request_body(
+        description = "The readings.",
+        content(
+            (crate::http::openapi::ReadingsBatch = "application/json"),
+            (crate::http::openapi::ReadingIn = "application/x-ndjson"),
+            (Vec<crate::http::openapi::SenmlRecord> = "application/senml+json"),
+        )
+    ),
+    security(("bearer" = [])),
+    responses(
+        (status = 200, description = "Stored: `accepted` counts newly stored readings (revisions included), not duplicates.", body = Accepted),
+        (status = 400, description = "The body is not well-formed JSON, NDJSON or SenML.", body = crate::http::ErrorBody),
+        (status = 413, description = "The body is over the size limit (`body_limit_bytes`).", body = crate::http::ErrorBody),
+        (status = 415, description = "A content type other than the three above.", body = crate::http::ErrorBody),
+        (status = 422, description = "Invalid readings (unknown station or quantity, a value that is not a finite number, a bad or future time, an unconvertible unit, an unknown field...), each listed in `details`; nothing was stored.", body = crate::http::ErrorBody),
+    )
+)]
 async fn post_readings(
     caller: Caller,
     State(state): State<AppState>,
@@ -99,8 +128,18 @@ async fn post_readings(
 
     // Every station must exist and every quantity be in the table; units must convert. The
     // answer lists every bad reading of the batch: the decoder's findings and these together.
-    let mut details: Vec<Detail> = decoded
-        .errors
+    let mut errors = decoded.errors;
+    let known = state
+        .store
+        .station_keys_lookup(&ingest::station_keys(&decoded.readings))
+        .await?;
+    let readings = ingest::resolve_readings(
+        decoded.readings,
+        |station| known.contains_key(station),
+        &state.config,
+        &mut errors,
+    );
+    let mut details: Vec<Detail> = errors
         .into_iter()
         .map(|e| Detail {
             index: Some(e.index),
@@ -108,53 +147,6 @@ async fn post_readings(
             reason: e.reason,
         })
         .collect();
-    let mut keys: Vec<String> = decoded
-        .readings
-        .iter()
-        .map(|(_, r)| r.station.clone())
-        .collect();
-    keys.sort();
-    keys.dedup();
-    let known = state.store.station_keys_lookup(&keys).await?;
-    let mut readings = Vec::with_capacity(decoded.readings.len());
-    for (index, reading) in decoded.readings {
-        let mut bad = |field: &str, reason: String| {
-            details.push(Detail {
-                index: Some(index),
-                field: field.into(),
-                reason,
-            })
-        };
-        if !known.contains_key(&reading.station) {
-            bad("station", format!("unknown station {:?}", reading.station));
-        }
-        let Some(spec) = state.config.quantity(&reading.quantity) else {
-            bad(
-                "quantity",
-                format!("unknown quantity {:?}", reading.quantity),
-            );
-            continue;
-        };
-        let value = match (reading.value, reading.unit.as_deref()) {
-            (None, _) => None,
-            (Some(value), None) => Some(value),
-            (Some(value), Some(unit)) => match units::convert(value, unit, &spec.unit) {
-                Ok(converted) => Some(converted),
-                Err(error) => {
-                    bad("unit", error.to_string());
-                    continue;
-                }
-            },
-        };
-        readings.push(NewReading {
-            station: reading.station,
-            quantity: reading.quantity,
-            observed_at_ms: reading.observed_at_ms,
-            value,
-            value_as_sent: reading.value,
-            unit_as_sent: reading.unit,
-        });
-    }
     details.sort_by_key(|d| d.index);
     if !details.is_empty() {
         return Err(invalid_readings(details));
@@ -165,6 +157,7 @@ async fn post_readings(
         revised,
     } = state.store.insert_batch(&readings, now_ms).await?;
     tracing::debug!(accepted, duplicates, revised, "batch stored");
+    crate::metrics::record_batch_stored(accepted, duplicates, revised);
     Ok((
         StatusCode::OK,
         Json(Accepted {

@@ -12,7 +12,7 @@ use consensor_core::ids::IntervalLength;
 use consensor_store::{Area, ResultRow, Store};
 use serde::Serialize;
 
-use super::params::{check_range, invalid_param, Params, RawPairs};
+use super::params::{invalid_param, Params, RawPairs};
 use super::rfc3339;
 use crate::auth::{Caller, ReadAccess};
 use crate::error::ApiError;
@@ -33,7 +33,7 @@ pub fn router() -> Router<AppState> {
 
 /// The wire form of one interval's consensus (API.md `Point`). Times are RFC 3339 UTC; every
 /// statistic the core could not compute is `null`.
-#[derive(Debug, Serialize)]
+#[derive(Debug, Serialize, utoipa::ToSchema)]
 pub struct PointOut {
     start: String,
     end: String,
@@ -79,7 +79,7 @@ impl From<&ResultRow> for PointOut {
     }
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct SeriesOut {
     area: String,
     quantity: String,
@@ -88,7 +88,7 @@ struct SeriesOut {
     points: Vec<PointOut>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct Queued {
     queued: u64,
 }
@@ -106,11 +106,57 @@ pub async fn find_area(state: &AppState, key: &str) -> Result<Area, ApiError> {
 
 /// The API's spelling of an interval length (`10m`); a length outside the table, which only a
 /// database edited by hand could hold, is shown in milliseconds rather than hidden.
-fn interval_name(interval_ms: i64) -> String {
+pub(super) fn interval_name(interval_ms: i64) -> String {
     IntervalLength::from_millis(interval_ms)
         .map_or_else(|| format!("{interval_ms}ms"), |l| l.as_str().to_owned())
 }
 
+/// Refuses a range `[from, to)` of more than [`MAX_SERIES_POINTS`] intervals of `interval_ms`.
+pub(super) fn check_series_length(
+    from_ms: i64,
+    to_ms: i64,
+    interval_ms: i64,
+) -> Result<(), ApiError> {
+    // The number of interval starts in [from, to) is at most the range divided by the length,
+    // rounded up.
+    let length = interval_ms.max(1);
+    let intervals = (to_ms - from_ms + length - 1) / length;
+    if intervals > MAX_SERIES_POINTS {
+        return Err(invalid_param(
+            "to",
+            format!(
+                "the range holds {intervals} intervals of {}; at most {MAX_SERIES_POINTS} are \
+                 returned per request, so split it into shorter ranges",
+                interval_name(interval_ms)
+            ),
+        ));
+    }
+    Ok(())
+}
+
+#[utoipa::path(
+    get,
+    path = "/v1/areas/{area}/series",
+    tag = "results",
+    summary = "The consensus series of an area and quantity",
+    description = "The latest revision of every interval with a start in `[from, to)`; intervals \
+        with no reading at all are left out. At most 10000 intervals per request. Role: reader \
+        (or none with `public_read = true`). These are screened network values, not a regulatory \
+        measurement.",
+    params(
+        ("area" = String, Path, description = "Area id."),
+        ("quantity" = String, Query, description = "A quantity of the table in force."),
+        ("from" = String, Query, description = "RFC 3339, inclusive, on the interval start."),
+        ("to" = String, Query, description = "RFC 3339, exclusive, on the interval start."),
+    ),
+    security((), ("bearer" = [])),
+    responses(
+        (status = 200, description = "The series.", body = SeriesOut),
+        (status = 400, description = "The query string cannot be parsed.", body = crate::http::ErrorBody),
+        (status = 404, description = "Unknown area.", body = crate::http::ErrorBody),
+        (status = 422, description = "A missing, unknown or invalid parameter, or a range of more than 10000 intervals.", body = crate::http::ErrorBody),
+    )
+)]
 async fn series(
     _: ReadAccess,
     State(state): State<AppState>,
@@ -119,24 +165,9 @@ async fn series(
 ) -> Result<Json<SeriesOut>, ApiError> {
     let params = Params::parse(query, &["quantity", "from", "to"])?;
     let quantity = params.required_quantity(&state, "quantity")?;
-    let from_ms = params.required_time("from")?;
-    let to_ms = params.required_time("to")?;
-    check_range(Some(from_ms), Some(to_ms))?;
+    let (from_ms, to_ms) = params.required_range()?;
     let area = find_area(&state, &area_key).await?;
-    // The number of interval starts in [from, to) is at most the range divided by the length,
-    // rounded up.
-    let interval_ms = area.interval_ms.max(1);
-    let intervals = (to_ms - from_ms + interval_ms - 1) / interval_ms;
-    if intervals > MAX_SERIES_POINTS {
-        return Err(invalid_param(
-            "to",
-            format!(
-                "the range holds {intervals} intervals of {}; at most {MAX_SERIES_POINTS} are \
-                 returned per request, so split it into shorter ranges",
-                interval_name(area.interval_ms)
-            ),
-        ));
-    }
+    check_series_length(from_ms, to_ms, area.interval_ms)?;
     let rows = state
         .store
         .series(&area.key, &quantity.key, from_ms, to_ms)
@@ -150,6 +181,24 @@ async fn series(
     }))
 }
 
+#[utoipa::path(
+    get,
+    path = "/v1/areas/{area}/latest",
+    tag = "results",
+    summary = "The newest interval with a result",
+    description = "Role: reader (or none with `public_read = true`).",
+    params(
+        ("area" = String, Path, description = "Area id."),
+        ("quantity" = String, Query, description = "A quantity of the table in force."),
+    ),
+    security((), ("bearer" = [])),
+    responses(
+        (status = 200, description = "The newest computed interval.", body = PointOut),
+        (status = 400, description = "The query string cannot be parsed.", body = crate::http::ErrorBody),
+        (status = 404, description = "Unknown area, or no interval computed yet.", body = crate::http::ErrorBody),
+        (status = 422, description = "A missing, unknown or invalid parameter.", body = crate::http::ErrorBody),
+    )
+)]
 async fn latest(
     _: ReadAccess,
     State(state): State<AppState>,
@@ -172,6 +221,26 @@ async fn latest(
     Ok(Json(PointOut::from(&row)))
 }
 
+#[utoipa::path(
+    get,
+    path = "/v1/areas/{area}/intervals/{start}",
+    tag = "results",
+    summary = "One interval, at its latest or a given revision",
+    description = "Earlier revisions stay readable. Role: reader (or none with `public_read = true`).",
+    params(
+        ("area" = String, Path, description = "Area id."),
+        ("start" = String, Path, description = "The interval start, RFC 3339."),
+        ("quantity" = String, Query, description = "A quantity of the table in force."),
+        ("revision" = Option<i64>, Query, description = "A revision (1, 2, ...); the latest when left out."),
+    ),
+    security((), ("bearer" = [])),
+    responses(
+        (status = 200, description = "The interval's result.", body = PointOut),
+        (status = 400, description = "The start is not RFC 3339, or the query string cannot be parsed.", body = crate::http::ErrorBody),
+        (status = 404, description = "Unknown area, or no such interval or revision.", body = crate::http::ErrorBody),
+        (status = 422, description = "A missing, unknown or invalid parameter.", body = crate::http::ErrorBody),
+    )
+)]
 async fn interval(
     _: ReadAccess,
     State(state): State<AppState>,
@@ -228,6 +297,27 @@ async fn interval(
     }
 }
 
+#[utoipa::path(
+    post,
+    path = "/v1/areas/{area}/recompute",
+    tag = "results",
+    summary = "Recompute a range of intervals",
+    description = "Every interval in `[from, to)` that has readings is recomputed from the stored \
+        readings into a new revision; the work shows in `pending_intervals` until done. Role: admin.",
+    params(
+        ("area" = String, Path, description = "Area id."),
+        ("quantity" = Option<String>, Query, description = "One quantity; all when left out."),
+        ("from" = String, Query, description = "RFC 3339, inclusive, on the interval start."),
+        ("to" = String, Query, description = "RFC 3339, exclusive, on the interval start."),
+    ),
+    security(("bearer" = [])),
+    responses(
+        (status = 202, description = "Queued: `queued` intervals will be recomputed.", body = Queued),
+        (status = 400, description = "The query string cannot be parsed.", body = crate::http::ErrorBody),
+        (status = 404, description = "Unknown area.", body = crate::http::ErrorBody),
+        (status = 422, description = "A missing, unknown or invalid parameter.", body = crate::http::ErrorBody),
+    )
+)]
 async fn recompute(
     caller: Caller,
     State(state): State<AppState>,
@@ -237,9 +327,7 @@ async fn recompute(
     caller.require_admin()?;
     let params = Params::parse(query, &["quantity", "from", "to"])?;
     let quantity = params.quantity(&state, "quantity")?;
-    let from_ms = params.required_time("from")?;
-    let to_ms = params.required_time("to")?;
-    check_range(Some(from_ms), Some(to_ms))?;
+    let (from_ms, to_ms) = params.required_range()?;
     let queued = state
         .store
         .mark_for_recompute(

@@ -9,7 +9,7 @@ use consensor_store::Store;
 use serde::{Deserialize, Serialize};
 
 use crate::auth::{issue_token, Caller, Role};
-use crate::error::{ApiError, ApiJson, Detail};
+use crate::error::{ApiError, ApiJson};
 use crate::state::AppState;
 
 pub fn router() -> Router<AppState> {
@@ -18,7 +18,7 @@ pub fn router() -> Router<AppState> {
         .route("/v1/tokens/{id}", delete(revoke))
 }
 
-#[derive(Deserialize)]
+#[derive(Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 struct TokenBody {
     role: String,
@@ -27,7 +27,7 @@ struct TokenBody {
     label: Option<String>,
 }
 
-#[derive(Serialize)]
+#[derive(Serialize, utoipa::ToSchema)]
 struct TokenOut {
     id: String,
     token: String,
@@ -36,14 +36,23 @@ struct TokenOut {
     label: Option<String>,
 }
 
-fn invalid(field: &str, reason: String) -> ApiError {
-    ApiError::invalid(format!("{field}: {reason}")).with_details(vec![Detail {
-        index: None,
-        field: field.into(),
-        reason,
-    }])
-}
-
+#[utoipa::path(
+    post,
+    path = "/v1/tokens",
+    tag = "tokens",
+    summary = "Issue a token",
+    description = "The token is shown once, in this answer; only its hash is stored. A `station` \
+        token needs the station ids it may post for; other roles take none. Role: admin.",
+    request_body = TokenBody,
+    security(("bearer" = [])),
+    responses(
+        (status = 201, description = "Issued.", body = TokenOut),
+        (status = 400, description = "The body is not well-formed JSON.", body = crate::http::ErrorBody),
+        (status = 413, description = "The body is over the size limit.", body = crate::http::ErrorBody),
+        (status = 415, description = "The body is not `application/json`.", body = crate::http::ErrorBody),
+        (status = 422, description = "An unknown role, stations that do not fit the role, a label over 200 characters, or an unknown field.", body = crate::http::ErrorBody),
+    )
+)]
 async fn create(
     caller: Caller,
     State(state): State<AppState>,
@@ -51,7 +60,7 @@ async fn create(
 ) -> Result<(StatusCode, Json<TokenOut>), ApiError> {
     caller.require_admin()?;
     let role = Role::parse(&body.role).ok_or_else(|| {
-        invalid(
+        ApiError::invalid_field(
             "role",
             format!(
                 "{:?} is not one of admin, operator, station, reader",
@@ -60,25 +69,28 @@ async fn create(
         )
     })?;
     if role == Role::Station && body.stations.is_empty() {
-        return Err(invalid(
+        return Err(ApiError::invalid_field(
             "stations",
-            "a station token needs at least one station id".into(),
+            "a station token needs at least one station id",
         ));
     }
     if role != Role::Station && !body.stations.is_empty() {
-        return Err(invalid(
+        return Err(ApiError::invalid_field(
             "stations",
-            "only a station token is bound to stations".into(),
+            "only a station token is bound to stations",
         ));
     }
     if let Some(bad) = body.stations.iter().find(|s| !is_valid_id(s)) {
-        return Err(invalid(
+        return Err(ApiError::invalid_field(
             "stations",
             format!("{bad:?} is not a valid station id"),
         ));
     }
     if body.label.as_ref().is_some_and(|l| l.chars().count() > 200) {
-        return Err(invalid("label", "must be at most 200 characters".into()));
+        return Err(ApiError::invalid_field(
+            "label",
+            "must be at most 200 characters",
+        ));
     }
     let mut stations = body.stations;
     stations.sort();
@@ -97,6 +109,19 @@ async fn create(
     ))
 }
 
+#[utoipa::path(
+    delete,
+    path = "/v1/tokens/{id}",
+    tag = "tokens",
+    summary = "Revoke a token",
+    description = "The token stops working at once. Revoking twice is not an error. Role: admin.",
+    params(("id" = String, Path, description = "The token's id, as `POST /v1/tokens` answered it.")),
+    security(("bearer" = [])),
+    responses(
+        (status = 204, description = "Revoked."),
+        (status = 404, description = "No token has this id.", body = crate::http::ErrorBody),
+    )
+)]
 async fn revoke(
     caller: Caller,
     State(state): State<AppState>,

@@ -8,16 +8,23 @@
 //! - `application/senml+json`: a SenML pack (RFC 8428, JSON representation), see [`senml`].
 //!
 //! What is checked here is everything that can be judged from the body alone: well-formedness,
-//! shape, field types, ids, times and the batch size. Whether a station or quantity exists, whether
-//! the station may post for it, and whether a unit converts to the canonical one are the HTTP
-//! layer's business, since they need the configuration and the database.
+//! shape, field types, ids, times and the batch size. Whether a station or quantity exists and
+//! whether a unit converts to the canonical one need the configuration and the database: the caller
+//! looks the stations up and [`resolve_readings`] does the rest. Whether the station may post for
+//! it is the HTTP layer's business. `consensor import` decodes its files line by line with
+//! [`decode_ndjson_line`] and [`decode_text_reading`] (a CSV row) and resolves them the same way.
 //!
 //! A batch is atomic (API.md), so decoding never stops at the first bad reading: every bad reading is
 //! listed by index, field and reason, and either all readings decode or none is returned.
 
 mod json_text;
 mod readings;
+mod resolve;
+mod rows;
 mod senml;
+
+pub use resolve::{resolve_readings, station_keys};
+pub use rows::{decode_ndjson_line, decode_text_reading, TextReading};
 
 use std::fmt;
 

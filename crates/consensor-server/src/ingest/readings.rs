@@ -106,7 +106,7 @@ pub(super) fn decode_ndjson(
 
 /// Checks one reading object, pushing every problem found to `errors`; returns the reading when it
 /// has none.
-fn reading_from_node(
+pub(super) fn reading_from_node(
     index: usize,
     node: Node,
     context: &Context<'_>,

@@ -5,7 +5,7 @@ use std::sync::atomic::{AtomicI64, Ordering};
 use std::sync::Arc;
 
 use consensor_server::config::Config;
-use consensor_server::state::Clock;
+use consensor_server::state::{AppState, Clock};
 use consensor_store::testing::TestDatabase;
 use serde_json::{json, Value};
 
@@ -14,6 +14,15 @@ pub const ADMIN: &str = "test-admin-token-0123456789";
 
 /// 2026-06-01T07:00:00Z in epoch milliseconds.
 pub const T0_MS: i64 = 1_780_297_200_000;
+
+/// The worker setting of the tests that wait for it: it polls often, so that they wait
+/// milliseconds, not half-seconds.
+pub const FAST_WORKER: (&str, &str) = ("CONSENSOR_WORKER__POLL_INTERVAL_SECONDS", "0.05");
+
+/// The worked example of Leys et al. (2013), J. Exp. Soc. Psychol. 49(4), 764–766: of these eight
+/// values only 1000 is set aside (modified z-score 191.36 > 3.5), and the median of the seven kept
+/// is 6 (numpy 2.4 `np.median`; the figures of consensor-core's `tests/interval.rs`).
+pub const LEYS: [f64; 8] = [1.0, 3.0, 3.0, 6.0, 8.0, 10.0, 10.0, 1000.0];
 
 /// A clock the test sets; it starts at T0 + 1 h.
 #[derive(Debug)]
@@ -49,20 +58,7 @@ impl TestServer {
     /// Starts the server on `database` with the default configuration plus `settings`
     /// (environment-style pairs such as `("CONSENSOR_BODY_LIMIT_BYTES", "2048")`).
     pub async fn start(database: TestDatabase, settings: &[(&str, &str)]) -> TestServer {
-        let mut env: Vec<(String, String)> = vec![
-            ("CONSENSOR_DATABASE_URL".into(), database.url.clone()),
-            ("CONSENSOR_ADMIN_TOKEN".into(), ADMIN.into()),
-        ];
-        env.extend(
-            settings
-                .iter()
-                .map(|(k, v)| ((*k).to_owned(), (*v).to_owned())),
-        );
-        let config = Config::load(None, env, &[]).expect("test configuration");
-        let clock = Arc::new(TestClock(AtomicI64::new(T0_MS + 3_600_000)));
-        let state = consensor_server::serve::open_state(config, clock.clone())
-            .await
-            .expect("open state");
+        let (state, clock) = open_state(&database, settings).await;
         let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
         let base = format!("http://{}", listener.local_addr().unwrap());
         let (shutdown, stop) = tokio::sync::oneshot::channel::<()>();
@@ -112,6 +108,25 @@ impl TestServer {
         }
         let response = request.send().await.expect("request");
         read(response).await
+    }
+
+    /// `GET path` with an optional bearer token.
+    pub async fn get(&self, path: &str, token: Option<&str>) -> (u16, Value) {
+        self.call(reqwest::Method::GET, path, token, None).await
+    }
+
+    /// Posts `readings` as one JSON batch with the admin token; asserts 200 and returns the body.
+    pub async fn post_readings(&self, readings: Vec<Value>) -> Value {
+        let (status, body) = self
+            .call(
+                reqwest::Method::POST,
+                "/v1/readings",
+                Some(ADMIN),
+                Some(json!({ "readings": readings })),
+            )
+            .await;
+        assert_eq!(status, 200, "{body}");
+        body
     }
 
     /// Posts a raw body with a content type.
@@ -184,6 +199,29 @@ impl TestServer {
     }
 }
 
+/// The server's state (no listener, no worker yet) on `database`, with the admin token and the
+/// default configuration plus `settings` (environment-style pairs); its clock starts at T0 + 1 h.
+pub async fn open_state(
+    database: &TestDatabase,
+    settings: &[(&str, &str)],
+) -> (AppState, Arc<TestClock>) {
+    let mut env: Vec<(String, String)> = vec![
+        ("CONSENSOR_DATABASE_URL".into(), database.url.clone()),
+        ("CONSENSOR_ADMIN_TOKEN".into(), ADMIN.into()),
+    ];
+    env.extend(
+        settings
+            .iter()
+            .map(|(k, v)| ((*k).to_owned(), (*v).to_owned())),
+    );
+    let config = Config::load(None, env, &[]).expect("test configuration");
+    let clock = Arc::new(TestClock::at(T0_MS + 3_600_000));
+    let state = consensor_server::serve::open_state(config, clock.clone())
+        .await
+        .expect("open state");
+    (state, clock)
+}
+
 /// Polls `GET /v1/status` until `pending_intervals` is 0 (at most 30 s, every 50 ms); returns the
 /// last status body.
 pub async fn wait_until_computed(server: &TestServer) -> Value {
@@ -213,6 +251,18 @@ async fn read(response: reqwest::Response) -> (u16, Value) {
         serde_json::from_str(&text).unwrap_or(Value::String(text))
     };
     (status, value)
+}
+
+/// Readings of `quantity`, `values[i]` from `stations[i]`, all observed at `T0 + minute`.
+pub fn readings_at(quantity: &str, stations: &[String], values: &[f64], minute: i64) -> Vec<Value> {
+    stations
+        .iter()
+        .zip(values)
+        .map(|(station, value)| {
+            json!({"station": station, "quantity": quantity, "value": value,
+                   "observed_at": at(minute)})
+        })
+        .collect()
 }
 
 /// RFC 3339 text for `T0 + minutes`.
