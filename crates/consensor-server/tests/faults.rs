@@ -25,7 +25,7 @@ use std::time::{Duration, Instant};
 
 use common::ADMIN;
 use consensor_store::testing::TestDatabase;
-use consensor_store::{NewArea, NewReading, NewStation, Store};
+use consensor_store::Store;
 use serde_json::{json, Value};
 
 const MINUTE_MS: i64 = 60_000;
@@ -838,45 +838,11 @@ async fn sqlite_worker_killed_mid_compute_resumes_without_loss_or_duplicates() {
     const INTERVALS: i64 = 400;
     let database = TestDatabase::sqlite();
     let store = database.open().await;
-    store
-        .upsert_area(&NewArea {
-            key: "velloran-basin".into(),
-            name: "Velloran basin".into(),
-            interval_ms: MINUTE_MS,
-        })
-        .await
-        .unwrap();
     let stations: Vec<String> = (0..5).map(|i| format!("VB-{i}")).collect();
-    for station in &stations {
-        store
-            .upsert_station(&NewStation {
-                key: station.clone(),
-                area_key: "velloran-basin".into(),
-                name: station.clone(),
-                lat: None,
-                lon: None,
-                elevation_m: None,
-            })
-            .await
-            .unwrap();
-    }
+    common::add_area(&store, "velloran-basin", MINUTE_MS, &stations).await;
     // 400 one-minute intervals with a reading of every station: 400 pending intervals.
     let start_ms = (now_minute() - 2 * INTERVALS) * MINUTE_MS;
-    let readings: Vec<NewReading> = (0..INTERVALS)
-        .flat_map(|minute| {
-            stations
-                .iter()
-                .enumerate()
-                .map(move |(s, station)| NewReading {
-                    station: station.clone(),
-                    quantity: QUANTITY.into(),
-                    observed_at_ms: start_ms + minute * MINUTE_MS,
-                    value: Some(9.0 + s as f64 * 0.2 + (minute % 7) as f64 * 0.1),
-                    value_as_sent: None,
-                    unit_as_sent: None,
-                })
-        })
-        .collect();
+    let readings = common::minutely_readings(&stations, QUANTITY, start_ms, INTERVALS, 9.0);
     store
         .insert_batch(&readings, start_ms + 2 * INTERVALS * MINUTE_MS)
         .await

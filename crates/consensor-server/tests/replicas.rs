@@ -7,7 +7,7 @@ mod common;
 use std::time::{Duration, Instant};
 
 use consensor_store::testing::TestDatabase;
-use consensor_store::{NewArea, NewReading, NewStation, Store};
+use consensor_store::Store;
 
 const MINUTE: i64 = 60_000;
 
@@ -17,45 +17,11 @@ async fn two_processes_compute_each_interval_once_even_when_one_dies() {
         return;
     };
     let store = database.open().await;
-    store
-        .upsert_area(&NewArea {
-            key: "shared".into(),
-            name: "Shared".into(),
-            interval_ms: MINUTE,
-        })
-        .await
-        .unwrap();
     let stations: Vec<String> = (0..5).map(|i| format!("R-{i}")).collect();
-    for station in &stations {
-        store
-            .upsert_station(&NewStation {
-                key: station.clone(),
-                area_key: "shared".into(),
-                name: station.clone(),
-                lat: None,
-                lon: None,
-                elevation_m: None,
-            })
-            .await
-            .unwrap();
-    }
+    common::add_area(&store, "shared", MINUTE, &stations).await;
     // 1000 one-minute intervals, each with a reading from every station: 1000 pending buckets.
     let start_ms = (chrono::Utc::now().timestamp_millis() / MINUTE - 2000) * MINUTE;
-    let readings: Vec<NewReading> = (0..1000i64)
-        .flat_map(|minute| {
-            stations
-                .iter()
-                .enumerate()
-                .map(move |(s, station)| NewReading {
-                    station: station.clone(),
-                    quantity: "air_temperature".into(),
-                    observed_at_ms: start_ms + minute * MINUTE,
-                    value: Some(10.0 + s as f64 * 0.2 + (minute % 7) as f64 * 0.1),
-                    value_as_sent: None,
-                    unit_as_sent: None,
-                })
-        })
-        .collect();
+    let readings = common::minutely_readings(&stations, "air_temperature", start_ms, 1000, 10.0);
     store
         .insert_batch(&readings, start_ms + 2000 * MINUTE)
         .await

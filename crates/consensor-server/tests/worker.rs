@@ -13,7 +13,7 @@ use consensor_core::checks::{Rule, Status};
 use consensor_server::config::Config;
 use consensor_server::worker::{run_once, run_until_idle, WorkerSettings};
 use consensor_store::testing::TestDatabase;
-use consensor_store::{NewArea, NewReading, NewStation, ReviewDecision, SetAsideFilter, Store};
+use consensor_store::{NewReading, ReviewDecision, SetAsideFilter, Store};
 
 on_both_backends!(
     worker_decides_revises_and_honours_overturns,
@@ -217,29 +217,8 @@ async fn open_with_area(
     let state = consensor_server::serve::open_state(config, clock)
         .await
         .unwrap();
-    state
-        .store
-        .upsert_area(&NewArea {
-            key: area.into(),
-            name: area.into(),
-            interval_ms: 600_000,
-        })
-        .await
-        .unwrap();
-    for station in stations {
-        state
-            .store
-            .upsert_station(&NewStation {
-                key: (*station).into(),
-                area_key: area.into(),
-                name: (*station).into(),
-                lat: None,
-                lon: None,
-                elevation_m: None,
-            })
-            .await
-            .unwrap();
-    }
+    let stations: Vec<String> = stations.iter().map(|s| (*s).to_owned()).collect();
+    common::add_area(&state.store, area, 600_000, &stations).await;
     state
 }
 

@@ -336,3 +336,60 @@ pub fn start_binary(
         }
     }
 }
+
+/// Adds an area of `interval_ms` intervals (named after its id) with the given stations, directly
+/// through the store.
+pub async fn add_area<S: consensor_store::Store>(
+    store: &S,
+    area: &str,
+    interval_ms: i64,
+    stations: &[String],
+) {
+    store
+        .upsert_area(&consensor_store::NewArea {
+            key: area.into(),
+            name: area.into(),
+            interval_ms,
+        })
+        .await
+        .unwrap();
+    for station in stations {
+        store
+            .upsert_station(&consensor_store::NewStation {
+                key: station.clone(),
+                area_key: area.into(),
+                name: station.clone(),
+                lat: None,
+                lon: None,
+                elevation_m: None,
+            })
+            .await
+            .unwrap();
+    }
+}
+
+/// One reading a minute from every station for `minutes` minutes from `start_ms`, station `s` at
+/// minute `m` reading `base + 0.2·s + 0.1·(m mod 7)`: values that agree, so nothing is set aside.
+pub fn minutely_readings(
+    stations: &[String],
+    quantity: &str,
+    start_ms: i64,
+    minutes: i64,
+    base: f64,
+) -> Vec<consensor_store::NewReading> {
+    (0..minutes)
+        .flat_map(|minute| {
+            stations
+                .iter()
+                .enumerate()
+                .map(move |(s, station)| consensor_store::NewReading {
+                    station: station.clone(),
+                    quantity: quantity.into(),
+                    observed_at_ms: start_ms + minute * 60_000,
+                    value: Some(base + s as f64 * 0.2 + (minute % 7) as f64 * 0.1),
+                    value_as_sent: None,
+                    unit_as_sent: None,
+                })
+        })
+        .collect()
+}
