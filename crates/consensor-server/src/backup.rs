@@ -22,19 +22,16 @@
 //! online dump. Restoring a backup (deploy/README.md): stop the server, copy the backup over the
 //! database file, remove the old `-wal` and `-shm` files beside it, start the server.
 //!
-//! This is the one place outside `consensor-store` that runs SQL: `VACUUM INTO` and the checks of
-//! the copy work on files, not on the `Store` model, and open their own connections with no
-//! migrations, so a backup never changes the live database's schema.
+//! The SQL (`VACUUM INTO`, releasing the copy's claims, the integrity check) lives in
+//! `consensor_store::backup`, on connections of its own with no migrations, so a backup never
+//! changes the live database's schema; this module handles the files and the command.
 
 use std::fmt;
 use std::path::{Path, PathBuf};
-use std::str::FromStr;
 use std::time::Duration;
 
 use anyhow::{bail, Context};
 use consensor_store::Backend;
-use sqlx::sqlite::SqliteConnectOptions;
-use sqlx::{ConnectOptions, Connection, Row};
 
 use crate::config::{redact_url, Config};
 
@@ -138,34 +135,20 @@ pub async fn run(options: BackupOptions, config: Config) -> anyhow::Result<Backu
 /// file `to`.
 pub async fn backup_sqlite(database_url: &str, to: &Path) -> anyhow::Result<BackupSummary> {
     let target = Target::prepare(to)?;
-    let source_options = SqliteConnectOptions::from_str(database_url)
-        .with_context(|| format!("invalid database URL {}", redact_url(database_url)))?
-        .create_if_missing(false)
-        .busy_timeout(BUSY_TIMEOUT);
-    let source_file = source_options.get_filename().to_owned();
-    if !source_file.is_file() {
-        bail!(
-            "the database file {} does not exist (check --database or CONSENSOR_DATABASE_URL)",
-            source_file.display()
-        );
-    }
-    let mut source = source_options
-        .connect()
-        .await
-        .with_context(|| format!("could not open the database {}", source_file.display()))?;
-    let result = copy_into(&mut source, &source_file, &target).await;
-    let _ = source.close().await;
-    if result.is_err() {
+    let copied =
+        consensor_store::backup::vacuum_sqlite_into(database_url, &target.partial, BUSY_TIMEOUT)
+            .await;
+    if let Err(error) = copied {
         target.discard_partial();
+        return Err(error.into());
     }
-    result?;
-
     let checked = async {
-        let claims_released = release_claims(&target.partial).await?;
+        let claims_released =
+            consensor_store::backup::release_claims_in_copy(&target.partial).await?;
         std::fs::File::open(&target.partial)
             .and_then(|file| file.sync_all())
             .with_context(|| format!("could not sync {} to disk", target.partial.display()))?;
-        let readings = check_copy(&target.partial).await?;
+        let readings = consensor_store::backup::check_copy(&target.partial).await?;
         anyhow::Ok((readings, claims_released))
     }
     .await;
@@ -184,96 +167,6 @@ pub async fn backup_sqlite(database_url: &str, to: &Path) -> anyhow::Result<Back
         readings,
         claims_released,
     })
-}
-
-/// Runs `VACUUM INTO` the target's temporary file, after checking that the source is a Consensor
-/// database.
-async fn copy_into(
-    source: &mut sqlx::SqliteConnection,
-    source_file: &Path,
-    target: &Target,
-) -> anyhow::Result<()> {
-    let has_readings: i64 = sqlx::query(
-        "SELECT count(*) FROM sqlite_master WHERE type = 'table' AND name = 'readings'",
-    )
-    .fetch_one(&mut *source)
-    .await
-    .with_context(|| format!("could not read the database {}", source_file.display()))?
-    .try_get(0)?;
-    if has_readings == 0 {
-        bail!(
-            "{} is not a Consensor database (it has no readings table)",
-            source_file.display()
-        );
-    }
-    let partial = target
-        .partial
-        .to_str()
-        .context("the backup path must be valid UTF-8")?;
-    sqlx::query("VACUUM INTO ?")
-        .bind(partial)
-        .execute(&mut *source)
-        .await
-        .with_context(|| format!("could not copy the database into {partial}"))?;
-    Ok(())
-}
-
-/// Releases, in the copy, the claims the live worker held (see the module documentation); returns
-/// how many there were. The copy is in rollback-journal mode (`VACUUM INTO` writes it so) and
-/// nothing else has it open.
-async fn release_claims(partial: &Path) -> anyhow::Result<u64> {
-    let mut copy = SqliteConnectOptions::new()
-        .filename(partial)
-        .connect()
-        .await
-        .with_context(|| format!("could not open the copy {}", partial.display()))?;
-    let result = sqlx::query(
-        "UPDATE pending_buckets SET claimed_by = NULL, claimed_at_ms = NULL \
-         WHERE claimed_by IS NOT NULL",
-    )
-    .execute(&mut copy)
-    .await;
-    let closed = copy.close().await;
-    let released = result
-        .with_context(|| format!("could not release the claims in {}", partial.display()))?
-        .rows_affected();
-    closed.with_context(|| format!("could not close the copy {}", partial.display()))?;
-    Ok(released)
-}
-
-/// Opens the copy read-only and immutable (nothing else has it open), runs
-/// `PRAGMA integrity_check` and counts its readings.
-async fn check_copy(partial: &Path) -> anyhow::Result<u64> {
-    let mut copy = SqliteConnectOptions::new()
-        .filename(partial)
-        .read_only(true)
-        .immutable(true)
-        .connect()
-        .await
-        .with_context(|| format!("could not open the copy {}", partial.display()))?;
-    let result = async {
-        let rows = sqlx::query("PRAGMA integrity_check")
-            .fetch_all(&mut copy)
-            .await?;
-        let messages: Vec<String> = rows
-            .iter()
-            .map(|row| row.try_get::<String, _>(0))
-            .collect::<Result<_, _>>()?;
-        if messages != ["ok"] {
-            bail!(
-                "the copy failed SQLite's integrity check: {}",
-                messages.join("; ")
-            );
-        }
-        let readings: i64 = sqlx::query("SELECT count(*) FROM readings")
-            .fetch_one(&mut copy)
-            .await?
-            .try_get(0)?;
-        Ok(u64::try_from(readings).unwrap_or(0))
-    }
-    .await;
-    let _ = copy.close().await;
-    result.with_context(|| format!("could not check the copy {}", partial.display()))
 }
 
 /// The backup file to create and the temporary file the copy is written to first.

@@ -46,6 +46,7 @@
 //! that is why Consensor pays for FULL. PostgreSQL keeps its defaults (`fsync=on`,
 //! `synchronous_commit=on`), under which a commit returns only after its WAL record is flushed.
 
+pub mod backup;
 mod batch;
 mod error;
 mod model;
