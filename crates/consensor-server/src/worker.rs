@@ -64,7 +64,7 @@ pub struct Outcome {
 /// One step: claims up to `claim_batch` pending buckets and computes each. Claimed buckets of one
 /// area and quantity whose history windows meet form a run: the run's readings are loaded with one
 /// query, every interval of it is decided from its own window of them (exactly the readings a load
-/// of that interval alone would give), and the run's results are stored in one transaction.
+/// of that interval alone would give), and the run's results are stored a few dozen per transaction.
 pub async fn run_once(
     state: &AppState,
     settings: &WorkerSettings,
@@ -94,6 +94,10 @@ pub async fn run_once(
     }
     Ok(outcome)
 }
+
+/// Decided intervals stored per transaction: one commit (one flush to disk) for many, while the
+/// write lock is held briefly enough that ingest batches on SQLite wait only a little for it.
+const STORE_CHUNK: usize = 32;
 
 /// How long a review waits for another worker that holds its interval's claim to finish.
 const REVIEW_WAIT: Duration = Duration::from_secs(10);
@@ -179,11 +183,16 @@ async fn compute_run(
             reasons: &decided.reasons,
         })
         .collect();
-    let stored = state
-        .store
-        .store_results(&to_store, state.clock.now_ms())
-        .await
-        .context("could not store an interval's result")?;
+    let mut stored = Vec::with_capacity(to_store.len());
+    for chunk in to_store.chunks(STORE_CHUNK) {
+        stored.extend(
+            state
+                .store
+                .store_results(chunk, state.clock.now_ms())
+                .await
+                .context("could not store an interval's result")?,
+        );
+    }
     let per_interval = started.elapsed().as_secs_f64() / run.len() as f64;
     for decided in &decided {
         crate::metrics::record_bucket_computed(

@@ -374,14 +374,31 @@ async fn compute_until_fed(
 ) -> anyhow::Result<usize> {
     let settings = stepper_settings(&state, index);
     let mut computed = 0;
+    let mut failures = 0;
     loop {
         // Read the flag before the step: a step that finds nothing after the feed has finished
         // means everything stored has been computed (or is held by the other stepper, which
         // finishes it).
         let finished = *feed_done.borrow();
-        let step = run_until_idle(&state, &settings, state.clock.now_ms())
-            .await
-            .context("the consensus worker failed")?;
+        let step = match run_until_idle(&state, &settings, state.clock.now_ms()).await {
+            Ok(step) => {
+                failures = 0;
+                step
+            }
+            // As the server's worker loop does: on a busy machine SQLite's write lock can stay
+            // taken longer than the busy timeout; hand the claims back and try again.
+            Err(error) if failures < 20 => {
+                failures += 1;
+                tracing::warn!(
+                    error = format!("{error:#}"),
+                    "demo worker step failed; retrying"
+                );
+                let _ = state.store.release_claims(&settings.worker_id).await;
+                tokio::time::sleep(Duration::from_millis(100)).await;
+                continue;
+            }
+            Err(error) => return Err(error.context("the consensus worker failed")),
+        };
         computed += step;
         if step == 0 {
             if finished {
