@@ -18,7 +18,6 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use common::ADMIN;
 use consensor_store::Store;
 use serde_json::{json, Value};
 use sqlx::{ConnectOptions, Connection, Row};
@@ -61,15 +60,8 @@ async fn send(
     path: &str,
     body: Option<Value>,
 ) -> (u16, Value) {
-    let mut request = client
-        .request(method, format!("{base}{path}"))
-        .bearer_auth(ADMIN);
-    if let Some(body) = body {
-        request = request.json(&body);
-    }
-    let response = request.send().await.expect("request");
-    let status = response.status().as_u16();
-    (status, response.json().await.unwrap_or(Value::Null))
+    let answer = common::send_as_admin(client, base, method, path, body).await;
+    (answer.status, answer.body)
 }
 
 /// Runs `consensor backup ARGS` with extra environment; returns exit success, stdout, stderr.

@@ -23,21 +23,13 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use common::ADMIN;
+use common::{send_as_admin as send, Answer};
 use consensor_store::testing::TestDatabase;
 use consensor_store::Store;
 use serde_json::{json, Value};
 
 const MINUTE_MS: i64 = 60_000;
 const QUANTITY: &str = "air_temperature";
-
-/// One answer of the server: status, `Retry-After` (if any) and JSON body.
-#[derive(Debug, Clone)]
-struct Answer {
-    status: u16,
-    retry_after: Option<String>,
-    body: Value,
-}
 
 /// A real HTTP client with a bound on every request, so that a server that stops answering fails
 /// the test instead of hanging it.
@@ -46,33 +38,6 @@ fn client() -> reqwest::Client {
         .timeout(Duration::from_secs(30))
         .build()
         .expect("HTTP client")
-}
-
-async fn send(
-    client: &reqwest::Client,
-    base: &str,
-    method: reqwest::Method,
-    path: &str,
-    body: Option<Value>,
-) -> Answer {
-    let mut request = client
-        .request(method, format!("{base}{path}"))
-        .bearer_auth(ADMIN);
-    if let Some(body) = body {
-        request = request.json(&body);
-    }
-    let response = request.send().await.expect("request");
-    let status = response.status().as_u16();
-    let retry_after = response
-        .headers()
-        .get("retry-after")
-        .map(|value| value.to_str().expect("ASCII Retry-After").to_owned());
-    let body = response.json().await.unwrap_or(Value::Null);
-    Answer {
-        status,
-        retry_after,
-        body,
-    }
 }
 
 /// Creates the area (10-minute intervals) and its stations through the API.

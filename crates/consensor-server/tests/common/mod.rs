@@ -393,3 +393,40 @@ pub fn minutely_readings(
         })
         .collect()
 }
+
+/// An answer to [`send_as_admin`]: status, `Retry-After` if any, and the JSON body (`Null` when
+/// the body is not JSON).
+#[derive(Debug, Clone)]
+pub struct Answer {
+    pub status: u16,
+    pub retry_after: Option<String>,
+    pub body: Value,
+}
+
+/// Sends one request with the admin token to `base` (`http://ADDR`) with a real client.
+pub async fn send_as_admin(
+    client: &reqwest::Client,
+    base: &str,
+    method: reqwest::Method,
+    path: &str,
+    body: Option<Value>,
+) -> Answer {
+    let mut request = client
+        .request(method, format!("{base}{path}"))
+        .bearer_auth(ADMIN);
+    if let Some(body) = body {
+        request = request.json(&body);
+    }
+    let response = request.send().await.expect("request");
+    let status = response.status().as_u16();
+    let retry_after = response
+        .headers()
+        .get("retry-after")
+        .map(|value| value.to_str().expect("ASCII Retry-After").to_owned());
+    let body = response.json().await.unwrap_or(Value::Null);
+    Answer {
+        status,
+        retry_after,
+        body,
+    }
+}
