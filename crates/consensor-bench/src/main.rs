@@ -5,9 +5,12 @@
 //! `cargo run --release -p consensor-bench -- ingest [--quick]` (PostgreSQL too when
 //! `CONSENSOR_TEST_POSTGRES_URL` is set)
 //! `cargo run --release -p consensor-bench -- worker [--quick] [--postgres]`
+//! `consensor-bench load [--quick] [--seconds N]` (the load test against the real server binary;
+//! `tools/load/run.sh` builds release and runs it)
 
 mod core_bench;
 mod ingest_bench;
+mod load_bench;
 mod machine;
 mod synthetic;
 mod worker_bench;
@@ -48,8 +51,14 @@ fn main() -> anyhow::Result<()> {
                 .build()?
                 .block_on(worker_bench::run(shape, postgres))
         }
+        Some("load") => tokio::runtime::Builder::new_multi_thread()
+            .enable_all()
+            .build()?
+            .block_on(load_bench::run(load_bench::Options::from_args(&args)?)),
         _ => {
-            eprintln!("usage: consensor-bench core|ingest|worker [--quick] [--postgres]");
+            eprintln!(
+                "usage: consensor-bench core|ingest|worker|load [--quick] [--postgres] [--seconds N]"
+            );
             std::process::exit(2);
         }
     }
