@@ -341,6 +341,12 @@ pub trait Store: Send + Sync {
         to_ms: i64,
     ) -> impl Future<Output = Result<ReadingCounts, StoreError>> + Send;
 
+    /// The observation time of the newest reading of each area that has any, by area key, in one
+    /// query: one index probe per station and quantity, whatever the number of readings.
+    fn newest_observation_by_area(
+        &self,
+    ) -> impl Future<Output = Result<Vec<(String, i64)>, StoreError>> + Send;
+
     /// The observation time of the station's newest reading of any quantity; `None` when it has
     /// none or the key is unknown.
     fn last_seen(
@@ -662,6 +668,10 @@ impl Store for AnyStore {
         to_ms: i64,
     ) -> Result<ReadingCounts, StoreError> {
         dispatch!(self, store => store.station_reading_counts(station, quantity, from_ms, to_ms))
+    }
+
+    async fn newest_observation_by_area(&self) -> Result<Vec<(String, i64)>, StoreError> {
+        dispatch!(self, store => store.newest_observation_by_area())
     }
 
     async fn last_seen(&self, station: &str) -> Result<Option<i64>, StoreError> {

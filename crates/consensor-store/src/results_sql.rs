@@ -1204,6 +1204,21 @@ macro_rules! result_store_methods {
         async fn last_seen(&self, station: &str) -> Result<Option<i64>, StoreError> {
             results_shared::last_seen(&self.pool, station).await
         }
+
+        async fn newest_observation_by_area(&self) -> Result<Vec<(String, i64)>, StoreError> {
+            // For each station and quantity, the newest time is the last entry of one range of
+            // the station-first index (migration 0003): a probe, not a scan.
+            Ok(sqlx::query_as(
+                "SELECT a.key, MAX(x.newest) FROM areas a JOIN ( \
+                   SELECT s.area_id AS area_id, \
+                   (SELECT MAX(r.observed_at_ms) FROM readings r \
+                    WHERE r.station_id = s.id AND r.quantity_id = q.id) AS newest \
+                   FROM stations s CROSS JOIN quantities q) x ON x.area_id = a.id \
+                 GROUP BY a.key HAVING MAX(x.newest) IS NOT NULL ORDER BY a.key",
+            )
+            .fetch_all(&self.pool)
+            .await?)
+        }
     };
 }
 

@@ -123,6 +123,7 @@ on_both_backends!(
     oldest_pending_mark_gives_the_worker_lag,
     pool_status_counts_open_idle_and_max,
     open_intervals_wait_for_their_refresh_and_released_claims_return,
+    newest_observation_of_each_area_across_stations_and_quantities,
 );
 
 /// The oldest mark among the pending buckets, which the metrics endpoint turns into the worker's
@@ -2349,4 +2350,57 @@ async fn open_intervals_wait_for_their_refresh_and_released_claims_return(
         .await
         .expect("claim released buckets");
     assert_eq!(taken.len(), 2);
+}
+
+/// The overview's "newest reading" of an area: the latest observation of any of its stations in any
+/// quantity; an area without readings is absent.
+async fn newest_observation_of_each_area_across_stations_and_quantities(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network(store).await;
+    store
+        .upsert_area(&NewArea {
+            key: "east-rise".to_owned(),
+            name: "East rise".to_owned(),
+            interval_ms: INTERVAL_MS,
+        })
+        .await
+        .expect("area");
+    store
+        .upsert_station(&station("ST-9", "east-rise"))
+        .await
+        .expect("station");
+    store
+        .upsert_area(&NewArea {
+            key: "quiet-fen".to_owned(),
+            name: "Quiet fen".to_owned(),
+            interval_ms: INTERVAL_MS,
+        })
+        .await
+        .expect("area without readings");
+    assert!(store
+        .newest_observation_by_area()
+        .await
+        .expect("none yet")
+        .is_empty());
+    store
+        .insert_batch(
+            &[
+                reading("ST-1", "air_temperature", BASE_MS + 60_000, 12.0),
+                reading("ST-2", "air_temperature", BASE_MS, 12.1),
+                reading("ST-2", "relative_humidity", BASE_MS + 120_000, 80.0),
+                reading("ST-9", "air_temperature", BASE_MS - 60_000, 11.0),
+            ],
+            NOW_MS,
+        )
+        .await
+        .expect("batch");
+    assert_eq!(
+        store.newest_observation_by_area().await.expect("newest"),
+        vec![
+            ("east-rise".to_owned(), BASE_MS - 60_000),
+            ("north-basin".to_owned(), BASE_MS + 120_000),
+        ]
+    );
 }

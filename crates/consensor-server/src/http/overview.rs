@@ -77,16 +77,16 @@ async fn overview(
     let now_ms = state.clock.now_ms();
     let areas = state.store.list_areas().await?;
     let stations = state.store.list_stations().await?;
-    // The newest observation of each area: the latest `last_seen` of its stations.
     let mut station_counts: BTreeMap<&str, usize> = BTreeMap::new();
-    let mut last_reading: BTreeMap<&str, i64> = BTreeMap::new();
     for station in &stations {
         *station_counts.entry(&station.area_key).or_default() += 1;
-        if let Some(seen) = state.store.last_seen(&station.key).await? {
-            let newest = last_reading.entry(&station.area_key).or_insert(seen);
-            *newest = (*newest).max(seen);
-        }
     }
+    // The newest observation of each area, in one query however many stations there are.
+    let newest = state.store.newest_observation_by_area().await?;
+    let last_reading: BTreeMap<&str, i64> = newest
+        .iter()
+        .map(|(area, newest)| (area.as_str(), *newest))
+        .collect();
     let mut summaries = Vec::with_capacity(areas.len());
     for area in &areas {
         let mut quantities = Vec::new();
