@@ -66,6 +66,26 @@ async fn network(client: &reqwest::Client, base: &str, area: &str, stations: &[S
 
 /// The readings of batch `index`: every station at each of `minutes` minutes of its own, starting
 /// at `first_minute + index * minutes`, so batches never share a reading key.
+/// Posts batch `index` (see [`batch`]) with the admin token.
+async fn post_batch(
+    client: &reqwest::Client,
+    base: &str,
+    stations: &[String],
+    first_minute: i64,
+    minutes: i64,
+    index: i64,
+) -> Answer {
+    let body = batch(stations, first_minute, minutes, index);
+    send(
+        client,
+        base,
+        reqwest::Method::POST,
+        "/v1/readings",
+        Some(body),
+    )
+    .await
+}
+
 fn batch(stations: &[String], first_minute: i64, minutes: i64, index: i64) -> Value {
     let mut readings = Vec::new();
     for minute in 0..minutes {
@@ -493,12 +513,13 @@ async fn postgres_stopped_mid_ingest_answers_503_stores_no_partial_batch_and_rec
     .await;
     // A batch sent while the server is unreachable is refused too (after the pool's acquire
     // timeout, 10 s, during which it keeps trying to connect).
-    let unreachable = send(
+    let unreachable = post_batch(
         &client,
         &base,
-        reqwest::Method::POST,
-        "/v1/readings",
-        Some(batch(&stations, first_minute, MINUTES, UNREACHABLE_BATCH)),
+        &stations,
+        first_minute,
+        MINUTES,
+        UNREACHABLE_BATCH,
     )
     .await;
     assert_unavailable(&unreachable, "a batch sent while PostgreSQL is down");
@@ -597,14 +618,7 @@ async fn sqlite_opened_read_only_answers_503_and_stays_consistent() {
     let (child, base) = start(&database.url, &[]);
     network(&client, &base, "velloran-basin", &stations).await;
     for index in 0..3 {
-        let answer = send(
-            &client,
-            &base,
-            reqwest::Method::POST,
-            "/v1/readings",
-            Some(batch(&stations, first_minute, MINUTES, index)),
-        )
-        .await;
+        let answer = post_batch(&client, &base, &stations, first_minute, MINUTES, index).await;
         assert_eq!(answer.status, 200, "{:?}", answer.body);
     }
     kill(child);
@@ -614,14 +628,7 @@ async fn sqlite_opened_read_only_answers_503_and_stays_consistent() {
     // mount or a file whose write permission was taken away makes SQLite open it). Root ignores
     // file permissions, so a chmod would not stop a test that runs as root; `mode=ro` does.
     let (child, base) = start(&format!("{}?mode=ro", database.url), &[]);
-    let refused = send(
-        &client,
-        &base,
-        reqwest::Method::POST,
-        "/v1/readings",
-        Some(batch(&stations, first_minute, MINUTES, 3)),
-    )
-    .await;
+    let refused = post_batch(&client, &base, &stations, first_minute, MINUTES, 3).await;
     assert_unavailable(&refused, "ingest into a read-only database");
     // Reading still works and shows exactly the acknowledged readings.
     let status = send(&client, &base, reqwest::Method::GET, "/v1/status", None).await;
@@ -634,14 +641,7 @@ async fn sqlite_opened_read_only_answers_503_and_stays_consistent() {
     let (child, base) = start(&database.url, &[]);
     let status = send(&client, &base, reqwest::Method::GET, "/v1/status", None).await;
     assert_eq!(status.body["readings"], acknowledged);
-    let retried = send(
-        &client,
-        &base,
-        reqwest::Method::POST,
-        "/v1/readings",
-        Some(batch(&stations, first_minute, MINUTES, 3)),
-    )
-    .await;
+    let retried = post_batch(&client, &base, &stations, first_minute, MINUTES, 3).await;
     assert_eq!(retried.status, 200, "{:?}", retried.body);
     assert_eq!(retried.body["accepted"], stations.len() * MINUTES as usize);
     kill(child);
@@ -729,14 +729,7 @@ async fn sqlite_on_a_full_disk_answers_503_stays_consistent_and_recovers() {
     let mut index = 0i64;
     let refused = loop {
         assert!(index < 400, "the file system never filled up");
-        let answer = send(
-            &client,
-            &base,
-            reqwest::Method::POST,
-            "/v1/readings",
-            Some(batch(&stations, first_minute, MINUTES, index)),
-        )
-        .await;
+        let answer = post_batch(&client, &base, &stations, first_minute, MINUTES, index).await;
         index += 1;
         if answer.status == 200 {
             acknowledged += answer.body["accepted"].as_u64().unwrap();
@@ -752,27 +745,13 @@ async fn sqlite_on_a_full_disk_answers_503_stays_consistent_and_recovers() {
 
     // Space comes back: the same process stores the refused batch without a restart.
     std::fs::remove_file(&ballast).expect("remove ballast");
-    let retried = send(
-        &client,
-        &base,
-        reqwest::Method::POST,
-        "/v1/readings",
-        Some(batch(&stations, first_minute, MINUTES, index - 1)),
-    )
-    .await;
+    let retried = post_batch(&client, &base, &stations, first_minute, MINUTES, index - 1).await;
     assert_eq!(retried.status, 200, "{:?}", retried.body);
     acknowledged += retried.body["accepted"].as_u64().unwrap();
     // More batches, and the worker (whose writes met the full disk too) catches up: no pooled
     // connection was left unusable by the failed transactions.
     for _ in 0..3 {
-        let answer = send(
-            &client,
-            &base,
-            reqwest::Method::POST,
-            "/v1/readings",
-            Some(batch(&stations, first_minute, MINUTES, index)),
-        )
-        .await;
+        let answer = post_batch(&client, &base, &stations, first_minute, MINUTES, index).await;
         assert_eq!(answer.status, 200, "{:?}", answer.body);
         acknowledged += answer.body["accepted"].as_u64().unwrap();
         index += 1;
