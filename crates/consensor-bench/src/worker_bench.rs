@@ -9,8 +9,8 @@ use std::time::Instant;
 
 use anyhow::Context;
 use consensor_core::checks::{
-    default_quantities, IntervalInput, IntervalOutcome, IntervalScreen, Reading, Rules,
-    StationReadings,
+    default_quantities, IntervalInput, IntervalOutcome, IntervalScreen, Judged, JudgedInterval,
+    JudgedStation, Judging, Reading, Rules, StationReadings,
 };
 use consensor_server::config::Config;
 use consensor_server::state::SystemClock;
@@ -43,16 +43,25 @@ pub async fn run(shape: Shape, postgres: bool) -> anyhow::Result<()> {
         (chrono::Utc::now().timestamp_millis() / INTERVAL - shape.minutes / 10 - 200) * INTERVAL;
     let values = generate(shape);
 
-    // The baseline: the core deciding every interval from memory, with the same three hours of
-    // history the worker loads.
+    // The baseline: the core deciding every interval from memory, each station's readings judged
+    // once as the worker does; beside it, each interval screened on its own with its history.
     let began = Instant::now();
-    let in_memory_intervals = decide_in_memory(shape, &values, start_ms);
+    let in_memory_intervals = decide_in_memory(shape, &values, start_ms, false);
     let in_memory = began.elapsed();
     println!(
         "in memory (core only):  {:>8} intervals in {:>7.2} s = {:>9.0} intervals/s",
         in_memory_intervals,
         in_memory.as_secs_f64(),
         in_memory_intervals as f64 / in_memory.as_secs_f64()
+    );
+    let began = Instant::now();
+    let one_by_one_intervals = decide_in_memory(shape, &values, start_ms, true);
+    let one_by_one = began.elapsed();
+    println!(
+        "in memory, one by one:  {:>8} intervals in {:>7.2} s = {:>9.0} intervals/s  (each interval re-judging its history)",
+        one_by_one_intervals,
+        one_by_one.as_secs_f64(),
+        one_by_one_intervals as f64 / one_by_one.as_secs_f64()
     );
 
     let mut databases = vec![("sqlite", TestDatabase::sqlite())];
@@ -138,49 +147,108 @@ fn generate(shape: Shape) -> Vec<Vec<Vec<f64>>> {
         .collect()
 }
 
-fn decide_in_memory(shape: Shape, values: &[Vec<Vec<f64>>], start_ms: i64) -> usize {
+/// The core deciding every interval from memory, each area's readings of the whole span in hand.
+/// `one_by_one`: each interval screened on its own with its history (what deciding intervals one at
+/// a time costs); otherwise each station is judged once and each interval decided on its share, as
+/// the worker does with a run of intervals. Both give the same outcomes (consensor-core's `batching`
+/// test).
+fn decide_in_memory(
+    shape: Shape,
+    values: &[Vec<Vec<f64>>],
+    start_ms: i64,
+    one_by_one: bool,
+) -> usize {
     let spec = default_quantities()
         .into_iter()
         .find(|q| q.key == "air_temperature")
         .expect("built-in quantity");
     let rules = Rules::default();
-    let history = WorkerSettings::default().history.as_millis() as i64 / MINUTE;
+    let judging = Judging {
+        quantity: &spec,
+        rules: &rules,
+        interval_ms: INTERVAL,
+        overturned: &[],
+    };
     let mut screen = IntervalScreen::default();
     let mut outcome = IntervalOutcome::default();
-    let mut series: Vec<Vec<Reading>> = vec![Vec::new(); shape.stations_per_area];
     let mut intervals = 0;
+    let end_ms = start_ms + shape.minutes * MINUTE;
     for area_values in values {
-        for first_minute in (0..shape.minutes).step_by(10) {
-            let from = (first_minute - history).max(0);
-            let to = (first_minute + 10).min(shape.minutes);
-            for (station, readings) in series.iter_mut().enumerate() {
-                readings.clear();
-                readings.extend((from..to).map(|minute| Reading {
-                    id: minute as u64,
-                    observed_at_ms: start_ms + minute * MINUTE,
-                    value: Some(area_values[station][minute as usize]),
-                    value_as_sent: Some(area_values[station][minute as usize]),
-                }));
+        let series: Vec<Vec<Reading>> = area_values
+            .iter()
+            .enumerate()
+            .map(|(station, station_values)| {
+                station_values
+                    .iter()
+                    .enumerate()
+                    .map(|(minute, &value)| Reading {
+                        id: (station * 1_000_000 + minute) as u64,
+                        observed_at_ms: start_ms + minute as i64 * MINUTE,
+                        value: Some(value),
+                        value_as_sent: Some(value),
+                    })
+                    .collect()
+            })
+            .collect();
+        let mut verdicts: Vec<Vec<Judged>> = vec![Vec::new(); series.len()];
+        if !one_by_one {
+            for (readings, judged) in series.iter().zip(&mut verdicts) {
+                screen.judge(&judging, readings, start_ms, end_ms, judged);
             }
-            let stations: Vec<StationReadings<'_>> = series
-                .iter()
-                .enumerate()
-                .map(|(i, readings)| StationReadings {
-                    station: i as u32,
-                    readings,
-                })
-                .collect();
-            screen.screen(
-                &IntervalInput {
-                    quantity: &spec,
-                    rules: &rules,
-                    start_ms: start_ms + first_minute * MINUTE,
-                    end_ms: start_ms + (first_minute + 10) * MINUTE,
-                    stations: &stations,
-                    overturned: &[],
-                },
-                &mut outcome,
+        }
+        for first_minute in (0..shape.minutes).step_by(10) {
+            let (from, to) = (
+                start_ms + first_minute * MINUTE,
+                start_ms + (first_minute + 10) * MINUTE,
             );
+            let slice = |readings: &[Reading], from_ms: i64| {
+                readings.partition_point(|r| r.observed_at_ms < from_ms)
+                    ..readings.partition_point(|r| r.observed_at_ms < to)
+            };
+            if one_by_one {
+                let stations: Vec<StationReadings<'_>> = series
+                    .iter()
+                    .enumerate()
+                    .map(|(i, readings)| StationReadings {
+                        station: i as u32,
+                        readings: &readings[slice(readings, rules.chain_start(from))],
+                    })
+                    .collect();
+                screen.screen(
+                    &IntervalInput {
+                        quantity: &spec,
+                        rules: &rules,
+                        start_ms: from,
+                        end_ms: to,
+                        stations: &stations,
+                        overturned: &[],
+                    },
+                    &mut outcome,
+                );
+            } else {
+                let stations: Vec<JudgedStation<'_>> = series
+                    .iter()
+                    .zip(&verdicts)
+                    .enumerate()
+                    .map(|(i, (readings, judged))| {
+                        let range = slice(readings, from);
+                        JudgedStation {
+                            station: i as u32,
+                            readings: &readings[range.clone()],
+                            judged: &judged[range],
+                        }
+                    })
+                    .collect();
+                screen.decide(
+                    &JudgedInterval {
+                        judging,
+                        start_ms: from,
+                        end_ms: to,
+                        stations: &stations,
+                    },
+                    &mut outcome,
+                );
+            }
             intervals += 1;
         }
     }

@@ -320,10 +320,7 @@ fn default_stale_after() -> f64 {
         .as_secs_f64()
 }
 fn default_history() -> f64 {
-    crate::worker::WorkerSettings::default()
-        .history
-        .as_secs_f64()
-        / 60.0
+    Rules::default().history_ms as f64 / 60_000.0
 }
 fn default_open_refresh() -> f64 {
     crate::worker::WorkerSettings::default()
@@ -469,6 +466,7 @@ impl RawConfig {
                 self.worker.history_minutes
             );
         }
+        rules.history_ms = (self.worker.history_minutes * 60_000.0).round() as i64;
         let worker = crate::worker::WorkerSettings {
             worker_id: self.worker.id,
             claim_batch: self.worker.claim_batch,
@@ -476,7 +474,6 @@ impl RawConfig {
                 "worker.stale_claim_seconds",
                 self.worker.stale_claim_seconds,
             )?,
-            history: Duration::from_secs_f64(self.worker.history_minutes * 60.0),
             poll_interval: seconds(
                 "worker.poll_interval_seconds",
                 self.worker.poll_interval_seconds,

@@ -12,7 +12,8 @@ use std::time::Duration;
 
 use anyhow::Context;
 use consensor_core::checks::{
-    IntervalInput, IntervalOutcome, IntervalScreen, QuantitySpec, Rules, StationReadings,
+    IntervalOutcome, IntervalScreen, Judged, JudgedInterval, JudgedStation, Judging, QuantitySpec,
+    Rules,
 };
 use consensor_store::{ClaimedBucket, IntervalClaim, IntervalData, ResultToStore, Store};
 
@@ -27,8 +28,6 @@ pub struct WorkerSettings {
     pub claim_batch: usize,
     /// A claim older than this is taken over (its worker is presumed dead).
     pub stale_after: Duration,
-    /// How far before an interval the step and flat-line tests look back.
-    pub history: Duration,
     /// How long an idle worker waits before looking again.
     pub poll_interval: Duration,
     /// An interval that has not ended yet is computed at most about once per this period while
@@ -43,9 +42,6 @@ impl Default for WorkerSettings {
             worker_id: format!("worker-{}", std::process::id()),
             claim_batch: 64,
             stale_after: Duration::from_secs(300),
-            // Three hours: an hour for the flat-line window plus room for the step test's chain of
-            // "previous accepted reading" to settle before the interval (see consensor-core).
-            history: Duration::from_secs(3 * 3600),
             poll_interval: Duration::from_millis(500),
             // Our own choice: a dashboard's current value is at most half a minute behind, and
             // the worker's load stays flat while every station streams into the open interval
@@ -82,16 +78,16 @@ pub async fn run_once(
         )
         .await
         .context("could not claim pending intervals")?;
-    let history_ms = settings.history.as_millis() as i64;
+    let rules = &state.config.rules;
     let mut outcome = Outcome::default();
-    for run in runs(buckets, history_ms) {
+    for run in runs(buckets, rules) {
         let Some(spec) = state.config.quantity(&run[0].quantity).cloned() else {
             // A quantity removed from the configuration after its readings were stored: the claim
             // lapses and the buckets wait until the quantity is configured again.
             tracing::warn!(quantity = %run[0].quantity, area = %run[0].area_key, intervals = run.len(), "pending intervals of an unconfigured quantity; skipped");
             continue;
         };
-        outcome.computed += compute_run(state, run, spec, history_ms).await?;
+        outcome.computed += compute_run(state, run, spec).await?;
     }
     Ok(outcome)
 }
@@ -134,8 +130,7 @@ pub async fn compute_interval_of_reading(
                     .quantity(&bucket.quantity)
                     .cloned()
                     .with_context(|| format!("quantity {} is not configured", bucket.quantity))?;
-                let history_ms = settings.history.as_millis() as i64;
-                compute_run(state, vec![bucket], spec, history_ms).await?;
+                compute_run(state, vec![bucket], spec).await?;
                 return Ok(true);
             }
             IntervalClaim::NotPending => return Ok(false),
@@ -152,24 +147,23 @@ async fn compute_run(
     state: &AppState,
     run: Vec<ClaimedBucket>,
     spec: QuantitySpec,
-    history_ms: i64,
 ) -> anyhow::Result<usize> {
     let started = std::time::Instant::now();
     let (first, last) = (&run[0], &run[run.len() - 1]);
+    let rules = state.config.rules.clone();
     let data = state
         .store
         .load_interval(
             first.area_id,
             &first.quantity,
-            first.bucket_start_ms - history_ms,
+            rules.chain_start(first.bucket_start_ms),
             last.bucket_start_ms + last.interval_ms,
         )
         .await
         .context("could not load an interval's readings")?;
-    let rules = state.config.rules.clone();
     // The statistics run on the blocking pool, off the async threads that serve requests.
     let (run, decided) = tokio::task::spawn_blocking(move || {
-        let decided = decide_run(&run, &spec, &rules, &data, history_ms);
+        let decided = decide_run(&run, &spec, &rules, &data);
         (run, decided)
     })
     .await
@@ -214,9 +208,9 @@ async fn compute_run(
 }
 
 /// Splits claimed buckets into runs: buckets of one area and quantity, in time order, where each
-/// bucket's history window (`history_ms` before its start) reaches back at least to the end of the
+/// bucket's history (from `rules.chain_start` of its start) reaches back at least to the end of the
 /// one before, so that one load of the run reads no reading that none of its buckets needs.
-fn runs(mut buckets: Vec<ClaimedBucket>, history_ms: i64) -> Vec<Vec<ClaimedBucket>> {
+fn runs(mut buckets: Vec<ClaimedBucket>, rules: &Rules) -> Vec<Vec<ClaimedBucket>> {
     buckets.sort_by_key(|b| (b.area_id, b.quantity_id, b.bucket_start_ms));
     let mut runs: Vec<Vec<ClaimedBucket>> = Vec::new();
     for bucket in buckets {
@@ -225,7 +219,7 @@ fn runs(mut buckets: Vec<ClaimedBucket>, history_ms: i64) -> Vec<Vec<ClaimedBuck
                 if run.last().is_some_and(|previous| {
                     previous.area_id == bucket.area_id
                         && previous.quantity_id == bucket.quantity_id
-                        && bucket.bucket_start_ms - history_ms
+                        && rules.chain_start(bucket.bucket_start_ms)
                             <= previous.bucket_start_ms + previous.interval_ms
                 }) =>
             {
@@ -293,47 +287,76 @@ struct Decided {
     reasons: Vec<String>,
 }
 
-/// Decides every bucket of a run from the readings loaded for the whole run: each bucket sees the
-/// readings of `[start - history_ms, end)` of every station that has any there.
+/// Decides every bucket of a run from the readings loaded for the whole run. Each station's readings
+/// are judged once (steps 1 and 2, which depend on that station alone) over the run's span; each
+/// bucket is then decided on its share of the verdicts, which gives exactly what deciding the bucket
+/// on its own would (consensor-core's `batching` test checks this).
 fn decide_run(
     run: &[ClaimedBucket],
     spec: &QuantitySpec,
     rules: &Rules,
     data: &IntervalData,
-    history_ms: i64,
 ) -> Vec<Decided> {
     let mut overturned: Vec<u64> = data.overturned.iter().copied().collect();
     overturned.sort_unstable();
+    let (run_start, run_end) = (
+        run[0].bucket_start_ms,
+        run[run.len() - 1].bucket_start_ms + run[run.len() - 1].interval_ms,
+    );
+    let judging = Judging {
+        quantity: spec,
+        rules,
+        interval_ms: run[0].interval_ms,
+        overturned: &overturned,
+    };
     let mut screen = IntervalScreen::default();
-    let mut stations: Vec<StationReadings<'_>> = Vec::with_capacity(data.stations.len());
+    // Per station: the index of its first reading in the run's span, and the verdicts from there on.
+    let mut verdicts: Vec<Judged> = Vec::new();
+    let mut spans: Vec<(usize, usize)> = Vec::with_capacity(data.stations.len());
+    for series in &data.stations {
+        let from = verdicts.len();
+        screen.judge(&judging, &series.readings, run_start, run_end, &mut verdicts);
+        spans.push((
+            series
+                .readings
+                .partition_point(|r| r.observed_at_ms < run_start),
+            from,
+        ));
+    }
+    let mut stations: Vec<JudgedStation<'_>> = Vec::with_capacity(data.stations.len());
     run.iter()
         .map(|bucket| {
-            let (from_ms, start_ms) = (bucket.bucket_start_ms - history_ms, bucket.bucket_start_ms);
+            let start_ms = bucket.bucket_start_ms;
             let end_ms = start_ms + bucket.interval_ms;
+            let history_from = rules.chain_start(start_ms);
             stations.clear();
             let mut station_ids = Vec::with_capacity(data.stations.len());
-            for series in &data.stations {
+            for (series, &(first, from)) in data.stations.iter().zip(&spans) {
                 let readings = &series.readings;
-                let low = readings.partition_point(|r| r.observed_at_ms < from_ms);
+                // A station takes part when it has a reading in the bucket's history or in the
+                // bucket itself, as when the bucket is loaded on its own.
+                let history_low = readings.partition_point(|r| r.observed_at_ms < history_from);
+                let low = readings.partition_point(|r| r.observed_at_ms < start_ms);
                 let high = readings.partition_point(|r| r.observed_at_ms < end_ms);
-                if low < high {
-                    stations.push(StationReadings {
+                if history_low < high {
+                    stations.push(JudgedStation {
                         station: station_ids.len() as u32,
                         readings: &readings[low..high],
+                        judged: &verdicts[from + low - first..from + high - first],
                     });
                     station_ids.push(series.station_id);
                 }
             }
-            let input = IntervalInput {
-                quantity: spec,
-                rules,
-                start_ms,
-                end_ms,
-                stations: &stations,
-                overturned: &overturned,
-            };
             let mut outcome = IntervalOutcome::default();
-            screen.screen(&input, &mut outcome);
+            screen.decide(
+                &JudgedInterval {
+                    judging,
+                    start_ms,
+                    end_ms,
+                    stations: &stations,
+                },
+                &mut outcome,
+            );
             let reasons = outcome
                 .set_aside
                 .iter()

@@ -10,10 +10,15 @@
 //! 6. the `Point` on the station values kept.
 //!
 //! The input holds each station's readings in time order, including its *history* before the
-//! interval (readings the step and flat-line tests look back on: give at least 60 minutes for the
-//! flat-line window, and preferably two or three hours so that the "previous accepted reading" of the
-//! step test is itself judged on enough history). History readings are judged by the same rules but
-//! produce no record; readings at or after the interval's end are ignored.
+//! interval: the readings the step and flat-line tests look back on. Every reading is judged on its
+//! station's readings from [`Rules::chain_start`] of its time on (one to two `history_ms` back), so
+//! give each station's readings from `rules.chain_start(start_ms)` on; earlier ones are skipped.
+//! History readings produce no record; readings at or after the interval's end are ignored.
+//!
+//! Steps 1 and 2 depend on one station's readings only, so a caller deciding many neighbouring
+//! intervals judges each station's readings once ([`IntervalScreen::judge`]) and then decides each
+//! interval on its share of the verdicts ([`IntervalScreen::decide`]); the outcome is the same as
+//! [`IntervalScreen::screen`] gives for each interval on its own.
 //!
 //! [`IntervalScreen`] keeps its working buffers between calls, and [`IntervalOutcome`] can be reused,
 //! so screening interval after interval allocates nothing once the buffers have grown (the benchmark
@@ -63,6 +68,20 @@ pub struct Rules {
     pub flat_min_readings: usize,
     /// The coverage of the median's confidence interval (0.95 for `ci95_*`).
     pub ci_confidence: f64,
+    /// How far back a station's readings are judged from (see [`Rules::chain_start`]).
+    pub history_ms: i64,
+}
+
+impl Rules {
+    /// Where the judgement of a reading observed at `time_ms` starts: the step test's "previous
+    /// accepted reading" and the precipitation gap form a chain from reading to reading, and the
+    /// chain of a reading is started afresh at this time, the start of the history block
+    /// (`history_ms` long, aligned on the epoch) before the reading's own. Every reading is thus
+    /// judged on one to two histories of its station's readings, the same whichever interval or run
+    /// of intervals it is decided with, so that a result never depends on how the worker batched.
+    pub fn chain_start(&self, time_ms: i64) -> i64 {
+        time_ms.div_euclid(self.history_ms) * self.history_ms - self.history_ms
+    }
 }
 
 impl Default for Rules {
@@ -73,6 +92,9 @@ impl Default for Rules {
             flat_window_ms: 60 * MINUTE_MS,
             flat_min_readings: 6,
             ci_confidence: 0.95,
+            // Three hours (our own choice): the flat-line window's hour, plus room for the step
+            // test's chain of "previous accepted reading" to settle before the reading judged.
+            history_ms: 3 * 60 * MINUTE_MS,
         }
     }
 }
@@ -193,7 +215,7 @@ pub fn screen_interval(input: &IntervalInput<'_>) -> IntervalOutcome {
 /// Reusable working memory for deciding intervals.
 #[derive(Debug, Default)]
 pub struct IntervalScreen {
-    verdicts: Vec<Verdict>,
+    verdicts: Vec<Judged>,
     flat_window: SlidingWindow,
     stations: Vec<StationWork>,
     values: Vec<f64>,
@@ -203,8 +225,6 @@ pub struct IntervalScreen {
 /// What the per-reading rules made of one reading.
 #[derive(Debug, Clone, Copy, PartialEq)]
 enum Verdict {
-    /// At or after the interval's end: not looked at.
-    Ignored,
     /// Caught by a rule of step 1.
     Hard {
         rule: Rule,
@@ -234,16 +254,27 @@ enum Verdict {
 /// Per-station bookkeeping for one interval.
 #[derive(Debug, Clone, Copy)]
 struct StationWork {
-    /// Index range of the station's readings inside `verdicts`.
+    /// Index range of the station's interval readings inside `verdicts`.
     first: usize,
     end: usize,
-    /// The first index (in `verdicts`) inside the interval.
-    interval_first: usize,
     value: Option<f64>,
     score: Option<f64>,
     far: bool,
     /// The station has a reading in the interval that an operator overturned.
     vouched: bool,
+}
+
+impl StationWork {
+    fn new(first: usize, end: usize) -> Self {
+        StationWork {
+            first,
+            end,
+            value: None,
+            score: None,
+            far: false,
+            vouched: false,
+        }
+    }
 }
 
 /// The centre and scale of a cross-station comparison, in the quantity's geometry.
@@ -253,48 +284,159 @@ struct Consensus {
     scale: f64,
 }
 
+/// What the per-reading rules (steps 1 and 2) of an area's stations need besides the readings.
+#[derive(Debug, Clone, Copy)]
+pub struct Judging<'a> {
+    pub quantity: &'a QuantitySpec,
+    pub rules: &'a Rules,
+    /// The area's interval length: the gap given to a station's first precipitation reading.
+    pub interval_ms: i64,
+    /// Ids of readings an operator overturned, sorted ascending (see [`IntervalInput::overturned`]).
+    pub overturned: &'a [u64],
+}
+
+/// The verdict of steps 1 and 2 on one reading, from [`IntervalScreen::judge`]; steps 3 to 6 take it
+/// up in [`IntervalScreen::decide`].
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Judged(Verdict);
+
+/// One station's readings of an interval with their verdicts of steps 1 and 2.
+#[derive(Debug, Clone, Copy)]
+pub struct JudgedStation<'a> {
+    /// The caller's handle for the station, copied into the results.
+    pub station: u32,
+    /// The station's readings in the interval, sorted by time.
+    pub readings: &'a [Reading],
+    /// `judged[i]` is the verdict on `readings[i]`.
+    pub judged: &'a [Judged],
+}
+
+/// An interval whose readings were judged beforehand, ready for steps 3 to 6.
+#[derive(Debug, Clone, Copy)]
+pub struct JudgedInterval<'a> {
+    pub judging: Judging<'a>,
+    /// The interval is `[start_ms, end_ms)`.
+    pub start_ms: i64,
+    pub end_ms: i64,
+    pub stations: &'a [JudgedStation<'a>],
+}
+
 impl IntervalScreen {
     /// Decides `input` into `outcome` (whose vectors are cleared and refilled).
     ///
     /// Panics if a station's readings are not sorted by time: the store returns them ordered, and a
     /// misordered series would silently change which reading is "previous".
     pub fn screen(&mut self, input: &IntervalInput<'_>, outcome: &mut IntervalOutcome) {
-        let spec = input.quantity;
+        let judging = Judging {
+            quantity: input.quantity,
+            rules: input.rules,
+            interval_ms: input.end_ms - input.start_ms,
+            overturned: input.overturned,
+        };
+        self.verdicts.clear();
+        self.stations.clear();
+        for station in input.stations {
+            let first = self.verdicts.len();
+            judge_readings(
+                &mut self.flat_window,
+                &judging,
+                station.readings,
+                input.start_ms,
+                input.end_ms,
+                &mut self.verdicts,
+            );
+            self.stations.push(StationWork::new(first, self.verdicts.len()));
+        }
+        let interval_readings = |index: usize| {
+            let station = &input.stations[index];
+            let readings = station.readings;
+            let low = readings.partition_point(|r| r.observed_at_ms < input.start_ms);
+            let high = readings.partition_point(|r| r.observed_at_ms < input.end_ms);
+            (station.station, &readings[low..high])
+        };
+        self.decide_judged(&judging, interval_readings, outcome);
+    }
+
+    /// Steps 1 and 2 for one station: appends to `out` one verdict for each of its readings
+    /// observed in `[from_ms, to_ms)`, in time order. Each reading is judged on its station's
+    /// readings from `rules.chain_start(observed_at)` on, whatever range it is judged with, so
+    /// `readings` must start at or before `rules.chain_start(from_ms)` (earlier ones are skipped).
+    ///
+    /// Panics if the readings are not sorted by time.
+    pub fn judge(
+        &mut self,
+        judging: &Judging<'_>,
+        readings: &[Reading],
+        from_ms: i64,
+        to_ms: i64,
+        out: &mut Vec<Judged>,
+    ) {
+        judge_readings(
+            &mut self.flat_window,
+            judging,
+            readings,
+            from_ms,
+            to_ms,
+            out,
+        );
+    }
+
+    /// Steps 3 to 6 on readings judged by [`IntervalScreen::judge`]: the same outcome as
+    /// [`IntervalScreen::screen`] gives on the same readings.
+    ///
+    /// Panics if a station has not exactly one verdict per reading.
+    pub fn decide(&mut self, interval: &JudgedInterval<'_>, outcome: &mut IntervalOutcome) {
+        self.verdicts.clear();
+        self.stations.clear();
+        for station in interval.stations {
+            assert_eq!(
+                station.readings.len(),
+                station.judged.len(),
+                "one verdict per reading"
+            );
+            let first = self.verdicts.len();
+            self.verdicts.extend_from_slice(station.judged);
+            self.stations
+                .push(StationWork::new(first, self.verdicts.len()));
+        }
+        let stations = interval.stations;
+        self.decide_judged(
+            &interval.judging,
+            |index: usize| (stations[index].station, stations[index].readings),
+            outcome,
+        );
+    }
+
+    /// Steps 3 to 6, with `self.verdicts` and `self.stations` filled for the interval's readings;
+    /// `interval_readings(i)` gives the handle and the interval readings of station `i`.
+    fn decide_judged<'r>(
+        &mut self,
+        judging: &Judging<'_>,
+        interval_readings: impl Fn(usize) -> (u32, &'r [Reading]),
+        outcome: &mut IntervalOutcome,
+    ) {
+        let spec = judging.quantity;
+        let rules = judging.rules;
         outcome.set_aside.clear();
         outcome.station_values.clear();
         outcome.point = Point::empty();
-        self.verdicts.clear();
-        self.stations.clear();
-
-        // Steps 1 and 2, station by station, in time order.
-        for station in input.stations {
-            let first = self.verdicts.len();
-            self.judge_station_readings(input, station.readings);
-            let interval_offset = station
-                .readings
-                .partition_point(|r| r.observed_at_ms < input.start_ms);
-            let vouched = !input.overturned.is_empty()
-                && station.readings[interval_offset..]
+        if !judging.overturned.is_empty() {
+            for (index, work) in self.stations.iter_mut().enumerate() {
+                work.vouched = interval_readings(index)
+                    .1
                     .iter()
-                    .take_while(|r| r.observed_at_ms < input.end_ms)
-                    .any(|r| input.overturned.binary_search(&r.id).is_ok());
-            self.stations.push(StationWork {
-                first,
-                end: self.verdicts.len(),
-                interval_first: first + interval_offset,
-                value: None,
-                score: None,
-                far: false,
-                vouched,
-            });
+                    .any(|r| judging.overturned.binary_search(&r.id).is_ok());
+            }
         }
 
         // Step 3: the provisional consensus clears or sets aside the step-suspects.
         self.values.clear();
-        for (work, station) in self.stations.iter().zip(input.stations) {
-            let candidates = interval_values(work, station, &self.verdicts, |v| {
-                matches!(v, Verdict::Passed | Verdict::StepSuspect { .. })
-            });
+        for (index, work) in self.stations.iter().enumerate() {
+            let candidates = interval_values(
+                &self.verdicts[work.first..work.end],
+                interval_readings(index).1,
+                |v| matches!(v, Verdict::Passed | Verdict::StepSuspect { .. }),
+            );
             if let Some(value) = station_median(spec, candidates, &mut self.scratch) {
                 self.values.push(value);
             }
@@ -304,7 +446,7 @@ impl IntervalScreen {
         } else {
             None
         };
-        for verdict in &mut self.verdicts {
+        for Judged(verdict) in &mut self.verdicts {
             if let Verdict::StepSuspect {
                 change,
                 limit,
@@ -321,15 +463,15 @@ impl IntervalScreen {
             }
         }
         if let Some(provisional) = provisional {
-            for (work, station) in self.stations.iter().zip(input.stations) {
-                for index in work.interval_first..work.end {
-                    let reading = &station.readings[index - work.first];
-                    if let (Verdict::StepSetAside { .. }, Some(value)) =
-                        (self.verdicts[index], reading.value)
-                    {
+            for (index, work) in self.stations.iter().enumerate() {
+                let readings = interval_readings(index).1;
+                for (Judged(verdict), reading) in
+                    self.verdicts[work.first..work.end].iter_mut().zip(readings)
+                {
+                    if let (Verdict::StepSetAside { .. }, Some(value)) = (*verdict, reading.value) {
                         let score = score(spec, &provisional, value);
-                        if score.abs() <= input.rules.far_limit {
-                            self.verdicts[index] = Verdict::Passed;
+                        if score.abs() <= rules.far_limit {
+                            *verdict = Verdict::Passed;
                         }
                     }
                 }
@@ -338,10 +480,12 @@ impl IntervalScreen {
 
         // Step 4: one value per station.
         self.values.clear();
-        for (work, station) in self.stations.iter_mut().zip(input.stations) {
-            let kept = interval_values(work, station, &self.verdicts, |v| {
-                matches!(v, Verdict::Passed)
-            });
+        for (index, work) in self.stations.iter_mut().enumerate() {
+            let kept = interval_values(
+                &self.verdicts[work.first..work.end],
+                interval_readings(index).1,
+                |v| matches!(v, Verdict::Passed),
+            );
             work.value = station_median(spec, kept, &mut self.scratch);
             if let Some(value) = work.value {
                 self.values.push(value);
@@ -360,17 +504,17 @@ impl IntervalScreen {
                 if let Some(value) = work.value {
                     let score = score(spec, &cross, value);
                     work.score = Some(score);
-                    work.far = score.abs() > input.rules.far_limit && !work.vouched;
+                    work.far = score.abs() > rules.far_limit && !work.vouched;
                 }
             }
         }
 
         // Step 6: the Point on the station values kept.
         self.values.clear();
-        for (work, station) in self.stations.iter().zip(input.stations) {
+        for (index, work) in self.stations.iter().enumerate() {
             if let Some(value) = work.value {
                 outcome.station_values.push(StationValue {
-                    station: station.station,
+                    station: interval_readings(index).0,
                     value,
                     used: !work.far,
                     score: work.score,
@@ -381,7 +525,7 @@ impl IntervalScreen {
             }
         }
         let mut point = Point::empty();
-        self.fill_point(input, &mut point);
+        self.fill_point(judging, &mut point);
         point.status = if self.values.is_empty() {
             Status::NoData
         } else if !tested {
@@ -393,97 +537,25 @@ impl IntervalScreen {
         point.stations_set_aside = self
             .stations
             .iter()
-            .filter(|work| work.interval_first < work.end && (work.value.is_none() || work.far))
+            .filter(|work| work.first < work.end && (work.value.is_none() || work.far))
             .count() as u32;
-        point.mean_all = self.naive_mean(input);
+        point.mean_all = self.naive_mean(spec, &interval_readings);
         outcome.point = point;
 
         // The records, station by station in time order.
-        for (work, station) in self.stations.iter().zip(input.stations) {
-            for index in work.interval_first..work.end {
-                let reading = &station.readings[index - work.first];
-                if let Some(record) = record_for(
-                    reading,
-                    station.station,
-                    self.verdicts[index],
-                    work,
-                    cross,
-                    input,
-                ) {
+        for (index, work) in self.stations.iter().enumerate() {
+            let (station, readings) = interval_readings(index);
+            for (&Judged(verdict), reading) in self.verdicts[work.first..work.end].iter().zip(readings)
+            {
+                if let Some(record) = record_for(reading, station, verdict, work, cross, rules) {
                     outcome.set_aside.push(record);
                 }
             }
         }
     }
 
-    /// Steps 1 and 2 for one station's readings (history included), appending one verdict each.
-    fn judge_station_readings(&mut self, input: &IntervalInput<'_>, readings: &[Reading]) {
-        let spec = input.quantity;
-        let rules = input.rules;
-        let first = self.verdicts.len();
-        self.flat_window.clear();
-        let mut previous_in_range: Option<i64> = None;
-        let mut previous_accepted: Option<(i64, f64)> = None;
-        let mut previous_time = i64::MIN;
-        for reading in readings {
-            let time = reading.observed_at_ms;
-            assert!(
-                time > previous_time,
-                "readings of one station must be sorted by time without repeats"
-            );
-            previous_time = time;
-            if time >= input.end_ms {
-                self.verdicts.push(Verdict::Ignored);
-                continue;
-            }
-            if let (true, Some(value)) = (
-                input.overturned.binary_search(&reading.id).is_ok(),
-                reading.value,
-            ) {
-                self.flat_window.retire_up_to(time - rules.flat_window_ms);
-                self.flat_window.push(time, value);
-                previous_accepted = Some((time, value));
-                self.verdicts.push(Verdict::Passed);
-                continue;
-            }
-            let verdict = match reading.value {
-                None => Verdict::Hard {
-                    rule: Rule::MissingValue,
-                    score: None,
-                    threshold: None,
-                    gap_ms: None,
-                    window_readings: None,
-                },
-                Some(value) => {
-                    let as_sent = reading.value_as_sent.unwrap_or(value);
-                    if rules.missing_codes.contains(&as_sent) {
-                        Verdict::Hard {
-                            rule: Rule::MissingCode,
-                            score: None,
-                            threshold: None,
-                            gap_ms: None,
-                            window_readings: None,
-                        }
-                    } else if let Some(verdict) =
-                        range_verdict(input, value, time, &mut previous_in_range)
-                    {
-                        verdict
-                    } else {
-                        self.flat_window.retire_up_to(time - rules.flat_window_ms);
-                        self.flat_window.push(time, value);
-                        flat_line_verdict(spec, rules, &self.flat_window)
-                            .or_else(|| step_verdict(spec, value, time, &mut previous_accepted))
-                            .unwrap_or(Verdict::Passed)
-                    }
-                }
-            };
-            self.verdicts.push(verdict);
-        }
-        debug_assert_eq!(self.verdicts.len() - first, readings.len());
-    }
-
-    fn fill_point(&mut self, input: &IntervalInput<'_>, point: &mut Point) {
-        let spec = input.quantity;
+    fn fill_point(&mut self, judging: &Judging<'_>, point: &mut Point) {
+        let spec = judging.quantity;
         if self.values.is_empty() {
             return;
         }
@@ -505,7 +577,7 @@ impl IntervalScreen {
         self.scratch.clear();
         self.scratch.extend_from_slice(&self.values);
         let range = median_range_in_place(&mut self.scratch).expect("non-empty");
-        let interval = ci::median_ci_in_place(&mut self.scratch, input.rules.ci_confidence);
+        let interval = ci::median_ci_in_place(&mut self.scratch, judging.rules.ci_confidence);
         for value in &mut self.scratch {
             *value = (*value - range.mid).abs();
         }
@@ -526,13 +598,14 @@ impl IntervalScreen {
 
     /// `mean_all`: the mean over stations of the median of each station's numeric readings in the
     /// interval, with no check at all.
-    fn naive_mean(&mut self, input: &IntervalInput<'_>) -> Option<f64> {
-        let spec = input.quantity;
+    fn naive_mean<'r>(
+        &mut self,
+        spec: &QuantitySpec,
+        interval_readings: &impl Fn(usize) -> (u32, &'r [Reading]),
+    ) -> Option<f64> {
         self.values.clear();
-        for (work, station) in self.stations.iter().zip(input.stations) {
-            let numeric = station.readings[work.interval_first - work.first..work.end - work.first]
-                .iter()
-                .filter_map(|r| r.value);
+        for index in 0..self.stations.len() {
+            let numeric = interval_readings(index).1.iter().filter_map(|r| r.value);
             if let Some(value) = station_median(spec, numeric, &mut self.scratch) {
                 self.values.push(value);
             }
@@ -550,22 +623,115 @@ impl IntervalScreen {
     }
 }
 
+/// Steps 1 and 2 for one station's readings observed in `[from_ms, to_ms)`, appended to `out`. The
+/// readings are cut into blocks of `rules.history_ms` aligned on the epoch; the readings of one block
+/// are judged in one pass over the station's readings from the start of the block before it, so each
+/// reading's verdict depends only on its own station's readings from `rules.chain_start(t)` on.
+fn judge_readings(
+    window: &mut SlidingWindow,
+    judging: &Judging<'_>,
+    readings: &[Reading],
+    from_ms: i64,
+    to_ms: i64,
+    out: &mut Vec<Judged>,
+) {
+    let history = judging.rules.history_ms;
+    assert!(history > 0, "rules.history_ms must be positive");
+    let mut block_from = from_ms;
+    while block_from < to_ms {
+        let block_start = block_from.div_euclid(history) * history;
+        let block_end = block_start.saturating_add(history).min(to_ms);
+        let anchor = judging.rules.chain_start(block_from);
+        let low = readings.partition_point(|r| r.observed_at_ms < anchor);
+        let high = readings.partition_point(|r| r.observed_at_ms < block_end);
+        judge_chain(window, judging, &readings[low..high], block_from, out);
+        block_from = block_end;
+    }
+}
+
+/// One pass of steps 1 and 2 over a station's readings in time order, each judged on those before it;
+/// the verdicts of the readings observed at or after `record_from_ms` are appended to `out`.
+fn judge_chain(
+    window: &mut SlidingWindow,
+    judging: &Judging<'_>,
+    readings: &[Reading],
+    record_from_ms: i64,
+    out: &mut Vec<Judged>,
+) {
+    let spec = judging.quantity;
+    let rules = judging.rules;
+    window.clear();
+    let mut previous_in_range: Option<i64> = None;
+    let mut previous_accepted: Option<(i64, f64)> = None;
+    let mut previous_time = i64::MIN;
+    for reading in readings {
+        let time = reading.observed_at_ms;
+        assert!(
+            time > previous_time,
+            "readings of one station must be sorted by time without repeats"
+        );
+        previous_time = time;
+        let overturned = !judging.overturned.is_empty()
+            && judging.overturned.binary_search(&reading.id).is_ok();
+        let verdict = match reading.value {
+            Some(value) if overturned => {
+                window.retire_up_to(time - rules.flat_window_ms);
+                window.push(time, value);
+                previous_accepted = Some((time, value));
+                Verdict::Passed
+            }
+            None => Verdict::Hard {
+                rule: Rule::MissingValue,
+                score: None,
+                threshold: None,
+                gap_ms: None,
+                window_readings: None,
+            },
+            Some(value) => {
+                let as_sent = reading.value_as_sent.unwrap_or(value);
+                if rules.missing_codes.contains(&as_sent) {
+                    Verdict::Hard {
+                        rule: Rule::MissingCode,
+                        score: None,
+                        threshold: None,
+                        gap_ms: None,
+                        window_readings: None,
+                    }
+                } else if let Some(verdict) =
+                    range_verdict(judging, value, time, &mut previous_in_range)
+                {
+                    verdict
+                } else {
+                    window.retire_up_to(time - rules.flat_window_ms);
+                    window.push(time, value);
+                    flat_line_verdict(spec, rules, window)
+                        .or_else(|| step_verdict(spec, value, time, &mut previous_accepted))
+                        .unwrap_or(Verdict::Passed)
+                }
+            }
+        };
+        if time >= record_from_ms {
+            out.push(Judged(verdict));
+        }
+    }
+}
+
 /// The values of a station's interval readings whose verdict satisfies `keep`.
 fn interval_values<'a>(
-    work: &StationWork,
-    station: &'a StationReadings<'a>,
-    verdicts: &'a [Verdict],
+    verdicts: &'a [Judged],
+    readings: &'a [Reading],
     keep: impl Fn(&Verdict) -> bool + 'a,
 ) -> impl Iterator<Item = f64> + 'a {
-    let range = work.interval_first..work.end;
-    let offset = work.first;
-    range.filter_map(move |index| {
-        if keep(&verdicts[index]) {
-            station.readings[index - offset].value
-        } else {
-            None
-        }
-    })
+    verdicts
+        .iter()
+        .zip(readings)
+        .filter_map(move |(Judged(verdict), reading)| {
+            if keep(verdict) {
+                reading.value
+            } else {
+                None
+            }
+        })
 }
 
 /// A station's value: the median of `values` (the circular median for directions).
@@ -616,15 +782,14 @@ fn score(spec: &QuantitySpec, consensus: &Consensus, value: f64) -> f64 {
 /// The `out_of_range` verdict, or `None` when the value is within range (and, for a per-minute
 /// quantity, the time becomes the station's previous in-range reading).
 fn range_verdict(
-    input: &IntervalInput<'_>,
+    judging: &Judging<'_>,
     value: f64,
     time: i64,
     previous_in_range: &mut Option<i64>,
 ) -> Option<Verdict> {
-    let spec = input.quantity;
+    let spec = judging.quantity;
     let (maximum, gap_ms) = if spec.range_per_minute {
-        let gap =
-            previous_in_range.map_or(input.end_ms - input.start_ms, |previous| time - previous);
+        let gap = previous_in_range.map_or(judging.interval_ms, |previous| time - previous);
         (spec.range_max * gap as f64 / MINUTE_MS as f64, Some(gap))
     } else {
         (spec.range_max, None)
@@ -778,7 +943,7 @@ fn record_for(
     verdict: Verdict,
     work: &StationWork,
     cross: Option<Consensus>,
-    input: &IntervalInput<'_>,
+    rules: &Rules,
 ) -> Option<SetAside> {
     let mut record = SetAside {
         reading_id: reading.id,
@@ -796,7 +961,7 @@ fn record_for(
         station_value: None,
     };
     match verdict {
-        Verdict::Ignored | Verdict::StepSuspect { .. } => return None,
+        Verdict::StepSuspect { .. } => return None,
         Verdict::Hard {
             rule,
             score,
@@ -831,7 +996,7 @@ fn record_for(
             let cross = cross.expect("a far station implies a cross-station test");
             record.rule = Rule::FarFromConsensus;
             record.score = work.score;
-            record.threshold = Some(input.rules.far_limit);
+            record.threshold = Some(rules.far_limit);
             record.consensus_median = Some(cross.median);
             record.consensus_spread = Some(cross.scale);
             record.station_value = work.value;

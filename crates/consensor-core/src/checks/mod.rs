@@ -5,8 +5,8 @@ pub mod interval;
 pub mod quantity;
 
 pub use interval::{
-    screen_interval, IntervalInput, IntervalOutcome, IntervalScreen, Point, Reading, Rules,
-    StationReadings, StationValue, Status,
+    screen_interval, IntervalInput, IntervalOutcome, IntervalScreen, Judged, JudgedInterval,
+    JudgedStation, Judging, Point, Reading, Rules, StationReadings, StationValue, Status,
 };
 pub use quantity::{
     default_quantities, QuantitySpec, QuantitySpecError, StepLimits, DEFAULT_MISSING_CODES,
