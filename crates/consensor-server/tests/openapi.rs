@@ -10,6 +10,13 @@
 //! `Allow` header of the 405 that the router answers to a method no route uses (RFC 9110 §15.5.6:
 //! a 405 lists the allowed methods in `Allow`). A route added without documentation, or a
 //! documented route that the router lost, fails `documented_routes_are_exactly_the_routers`.
+//!
+//! The answers that come from the layers and extractors every route shares (401/403 from the token
+//! check, 408 from the request timeout, 413 from the body limit, 429 from the rate limit, 431 from
+//! the header limit, 503 when the database is unavailable) must be documented on every operation
+//! that can give them (`shared_answers_are_documented_where_they_can_happen`), and the server is
+//! made to give 413, 429 and 431 on every documented operation to check that what it really sends
+//! is documented (`what_the_server_sends_is_documented`).
 
 mod common;
 
@@ -24,7 +31,9 @@ use serde_json::{json, Value};
 
 on_both_backends!(
     documented_routes_are_exactly_the_routers,
-    document_shape_and_error_body
+    document_shape_and_error_body,
+    shared_answers_are_documented_where_they_can_happen,
+    what_the_server_sends_is_documented
 );
 
 /// The web pages for people (HTML, served by `crate::web`): they are not part of the API that
@@ -378,5 +387,207 @@ async fn document_shape_and_error_body(database: TestDatabase) {
             );
         }
     }
+    server.stop().await;
+}
+
+/// The statuses an operation documents.
+fn documented_statuses(operation: &Value) -> BTreeSet<u16> {
+    operation["responses"]
+        .as_object()
+        .expect("responses")
+        .keys()
+        .map(|status| status.parse().expect("a numeric status"))
+        .collect()
+}
+
+/// The operation object of `method` (upper case) on `path`.
+fn operation<'a>(document: &'a Value, path: &str, method: &str) -> &'a Value {
+    &document["paths"][path][method.to_lowercase()]
+}
+
+/// Whether an operation accepts a bearer token (its `security` names the scheme).
+fn takes_token(operation: &Value) -> bool {
+    operation["security"]
+        .as_array()
+        .is_some_and(|s| s.iter().any(|r| r.get("bearer").is_some()))
+}
+
+/// The routes that answer without the database: no token lookup, no query (`/healthz` is
+/// liveness, API.md "Operations"; `/openapi.json` is a constant).
+const WITHOUT_DATABASE: [&str; 2] = ["/healthz", "/openapi.json"];
+
+/// A documented `Retry-After` header: a whole number of seconds (RFC 9110 §10.2.3, delay-seconds).
+#[track_caller]
+fn assert_retry_after_documented(operation: &Value, status: &str, what: &str) {
+    let header = &operation["responses"][status]["headers"]["Retry-After"];
+    assert_eq!(
+        header["schema"]["type"], "integer",
+        "{what} {status}: Retry-After is not documented as whole seconds: {header}"
+    );
+}
+
+async fn shared_answers_are_documented_where_they_can_happen(database: TestDatabase) {
+    let server = TestServer::start(database, &[]).await;
+    let document = fetch_document(&server).await;
+    let operations = documented_operations(&document);
+    assert!(operations.len() >= 20, "{operations:?}");
+    for (path, method) in &operations {
+        let what = format!("{method} {path}");
+        let operation = operation(&document, path, method);
+        let statuses = documented_statuses(operation);
+        let mut expected: BTreeSet<u16> = BTreeSet::new();
+        // Layers of the whole application (`http/mod.rs`): the request timeout (408), the header
+        // limit (431) and the opaque internal error (500) can meet any route.
+        expected.extend([408, 431, 500]);
+        if takes_token(operation) {
+            // The auth extractors: no or unknown token, wrong role, and the rate limit they apply.
+            expected.extend([401, 403, 429]);
+            assert_retry_after_documented(operation, "429", &what);
+        } else {
+            // No token, no budget: such a route never answers 429, so it must not say it does.
+            assert!(
+                !statuses.contains(&429),
+                "{what} documents a 429 it cannot send"
+            );
+        }
+        if !WITHOUT_DATABASE.contains(&path.as_str()) {
+            expected.insert(503);
+            assert_retry_after_documented(operation, "503", &what);
+        } else {
+            assert!(
+                !statuses.contains(&503),
+                "{what} documents a 503 it cannot send"
+            );
+        }
+        if operation.get("requestBody").is_some() {
+            // The body limit (`body_limit_bytes`).
+            expected.insert(413);
+        }
+        let missing: Vec<_> = expected.difference(&statuses).collect();
+        assert!(missing.is_empty(), "{what} does not document {missing:?}");
+    }
+    // The ingest route in full (API.md "Ingest": 200, 400, 413, 422; "Roles and tokens": 401,
+    // 403; the shared answers above; 415 for a content type other than the three formats).
+    let ingest = operation(&document, "/v1/readings", "POST");
+    assert_eq!(
+        documented_statuses(ingest),
+        BTreeSet::from([200, 400, 401, 403, 408, 413, 415, 422, 429, 431, 500, 503]),
+        "POST /v1/readings"
+    );
+    // /readyz documents its own 503 (its own 2 s bound), with the shared Retry-After header.
+    assert!(
+        operation(&document, "/readyz", "GET")["responses"]["503"]["description"]
+            .as_str()
+            .is_some_and(|d| d.contains("2 s"))
+    );
+    server.stop().await;
+}
+
+/// A request of `method` on `path` with the admin token, optional extra header and raw JSON body;
+/// returns the status and whether it came with `Retry-After`.
+async fn probe(
+    server: &TestServer,
+    method: &str,
+    path: &str,
+    header: Option<(&str, String)>,
+    body: Option<String>,
+) -> (u16, bool) {
+    let mut request = server
+        .client
+        .request(
+            Method::from_bytes(method.as_bytes()).unwrap(),
+            server.url(&concrete(path)),
+        )
+        .bearer_auth(ADMIN);
+    if let Some((name, value)) = header {
+        request = request.header(name, value);
+    }
+    if let Some(body) = body {
+        request = request
+            .header("content-type", "application/json")
+            .body(body);
+    }
+    let response = request.send().await.expect("probe");
+    let retry_after = response.headers().contains_key("retry-after");
+    (response.status().as_u16(), retry_after)
+}
+
+async fn what_the_server_sends_is_documented(database: TestDatabase) {
+    // A small body limit, and a rate limit of a few requests that hardly refills (one request per
+    // 1000 s), so that the test can run the admin token's budget out on purpose.
+    const BURST: usize = 8;
+    let burst = BURST.to_string();
+    let server = TestServer::start(
+        database,
+        &[
+            ("CONSENSOR_BODY_LIMIT_BYTES", "4096"),
+            ("CONSENSOR_RATE_LIMIT__REQUESTS_PER_SECOND", "0.001"),
+            ("CONSENSOR_RATE_LIMIT__BURST", &burst),
+        ],
+    )
+    .await;
+    let document = fetch_document(&server).await;
+    let operations = documented_operations(&document);
+    let mut seen: BTreeMap<u16, usize> = BTreeMap::new();
+    let mut check = |path: &str, method: &str, status: u16, why: &str| {
+        let statuses = documented_statuses(operation(&document, path, method));
+        assert!(
+            statuses.contains(&status),
+            "{method} {path} answered {status} ({why}), which its description does not list: \
+             {statuses:?}"
+        );
+        *seen.entry(status).or_default() += 1;
+    };
+
+    // 40 KiB of header fields, over `header_limit_bytes` (32 KiB): 431 (RFC 6585 §5) on every
+    // route, before any token is looked at (so no budget is used).
+    for (path, method) in &operations {
+        let padding = Some(("x-padding", "a".repeat(40 * 1024)));
+        let (status, _) = probe(&server, method, path, padding, None).await;
+        assert_eq!(status, 431, "{method} {path}");
+        check(path, method, status, "header fields over the limit");
+    }
+    // A body over `body_limit_bytes` on every route that takes one: 413 (RFC 9110 §15.5.14).
+    let with_body: Vec<_> = operations
+        .iter()
+        .filter(|(path, method)| {
+            operation(&document, path, method)
+                .get("requestBody")
+                .is_some()
+        })
+        .collect();
+    assert!(
+        with_body.len() >= 5 && with_body.len() < BURST,
+        "{with_body:?}"
+    );
+    for (path, method) in &with_body {
+        let body = format!("{{\"name\": \"{}\"}}", "n".repeat(5000));
+        let (status, _) = probe(&server, method, path, None, Some(body)).await;
+        assert_eq!(status, 413, "{method} {path}");
+        check(path, method, status, "a body over the limit");
+    }
+    // Use up the rest of the admin token's budget, then every route that takes a token answers
+    // 429 with Retry-After (RFC 6585 §4), and the others answer as usual.
+    let mut used = with_body.len();
+    while used < BURST {
+        let (status, _) = probe(&server, "GET", "/v1/areas", None, None).await;
+        assert_eq!(status, 200);
+        used += 1;
+    }
+    for (path, method) in &operations {
+        let body = matches!(method.as_str(), "POST" | "PUT").then(|| "{}".to_owned());
+        let (status, retry_after) = probe(&server, method, path, None, body).await;
+        if takes_token(operation(&document, path, method)) {
+            assert_eq!(status, 429, "{method} {path}");
+            assert!(retry_after, "{method} {path}: 429 without Retry-After");
+        } else {
+            assert_ne!(status, 429, "{method} {path}");
+        }
+        check(path, method, status, "the admin token's budget used up");
+    }
+    assert!(
+        seen[&431] == operations.len() && seen[&429] > 15,
+        "{seen:?}"
+    );
     server.stop().await;
 }

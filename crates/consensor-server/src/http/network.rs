@@ -62,7 +62,6 @@ fn check_name(name: &str) -> Result<(), ApiError> {
         (status = 200, description = "Updated.", body = AreaOut),
         (status = 201, description = "Created.", body = AreaOut),
         (status = 400, description = "The body is not well-formed JSON.", body = crate::http::ErrorBody),
-        (status = 413, description = "The body is over the size limit.", body = crate::http::ErrorBody),
         (status = 415, description = "The body is not `application/json`.", body = crate::http::ErrorBody),
         (status = 422, description = "An invalid id, name or interval, or an unknown field.", body = crate::http::ErrorBody),
     )
@@ -172,7 +171,6 @@ fn check_coordinate(field: &str, value: Option<f64>, limit: f64) -> Result<(), A
         (status = 200, description = "Updated.", body = StationOut),
         (status = 201, description = "Created.", body = StationOut),
         (status = 400, description = "The body is not well-formed JSON.", body = crate::http::ErrorBody),
-        (status = 413, description = "The body is over the size limit.", body = crate::http::ErrorBody),
         (status = 415, description = "The body is not `application/json`.", body = crate::http::ErrorBody),
         (status = 422, description = "An invalid id, name or coordinate, an unknown area, or an unknown field.", body = crate::http::ErrorBody),
     )

@@ -1,7 +1,8 @@
 //! `GET /openapi.json`: the OpenAPI 3.1 description of the HTTP API, generated from the code: each
 //! handler carries a `#[utoipa::path]` annotation next to its route, and each wire type derives
 //! `ToSchema` beside its `Serialize`/`Deserialize`. This module gathers them, adds what every
-//! operation shares (the bearer scheme, and the 401/403/408/500/503 answers), and serves the result.
+//! operation shares (the bearer scheme, and the 401/403/408/413/429/431/500/503 answers of the
+//! shared layers and extractors, from one table, [`SHARED_ANSWERS`]), and serves the result.
 //!
 //! The test `tests/openapi.rs` fetches the document from the running server and compares it with
 //! the router itself, both ways, so a route cannot be added without being documented here.
@@ -13,6 +14,8 @@ use axum::response::IntoResponse;
 use axum::routing::get;
 use axum::Router;
 use serde::Serialize;
+use utoipa::openapi::header::{Header, HeaderBuilder};
+use utoipa::openapi::schema::{ObjectBuilder, Type};
 use utoipa::openapi::security::{HttpAuthScheme, HttpBuilder, SecurityScheme};
 use utoipa::openapi::{ContentBuilder, OpenApi as Document, Ref, RefOr, ResponseBuilder};
 use utoipa::{Modify, OpenApi, ToSchema};
@@ -171,13 +174,109 @@ async fn openapi_json() -> impl IntoResponse {
     )
 }
 
-/// Adds the bearer security scheme, and to every operation the answers that any route may give:
-/// 401 and 403 where a token is accepted, 408 (the request timeout), 500, and 503 where the
-/// database is used.
+/// Adds the bearer security scheme, and to every operation the answers that are not made by its
+/// handler but by the layers and extractors every route shares ([`SHARED_ANSWERS`]).
 struct SharedAnswers;
+
+/// Which operations a shared answer applies to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Scope {
+    /// Every operation: the answer comes from a layer of the whole application (`http/mod.rs`).
+    Every,
+    /// Operations that accept a token: the answer comes from the auth extractors (`auth.rs`),
+    /// which also apply the rate limit (`rate_limit.rs`).
+    TakesToken,
+    /// Operations that use the database (all but [`WITHOUT_DATABASE`]; the token lookup uses it).
+    UsesDatabase,
+    /// Operations with a request body: the body limit (`DefaultBodyLimit` in `http/mod.rs`).
+    TakesBody,
+}
+
+/// An answer that many operations share, documented once here rather than in each annotation.
+struct SharedAnswer {
+    status: &'static str,
+    description: &'static str,
+    scope: Scope,
+    /// Sent with `Retry-After` (whole seconds, RFC 9110 §10.2.3).
+    retry_after: bool,
+}
+
+/// The answers the layers and extractors give, whatever the handler. An operation whose own
+/// annotation already documents one of these statuses keeps its own description (and gains the
+/// `Retry-After` header where the shared answer has one).
+const SHARED_ANSWERS: &[SharedAnswer] = &[
+    SharedAnswer {
+        status: "413",
+        description: "The body is over the size limit (`body_limit_bytes`); nothing was done.",
+        scope: Scope::TakesBody,
+        retry_after: false,
+    },
+    SharedAnswer {
+        status: "401",
+        description: "No token, or one that is unknown or revoked.",
+        scope: Scope::TakesToken,
+        retry_after: false,
+    },
+    SharedAnswer {
+        status: "403",
+        description: "A valid token whose role may not do this.",
+        scope: Scope::TakesToken,
+        retry_after: false,
+    },
+    SharedAnswer {
+        status: "408",
+        description: "The request was not answered within `request_timeout_seconds`, counted from \
+            the end of its head and including the time to read its body (a client that trickles \
+            its body is cut off). A connection that does not send a complete request head within \
+            `request_head_timeout_seconds` is closed without an answer.",
+        scope: Scope::Every,
+        retry_after: false,
+    },
+    SharedAnswer {
+        status: "429",
+        description: "The token (or, for an anonymous read with `public_read`, the client \
+            address) has used up its request budget (`[rate_limit]`); nothing was done. \
+            `Retry-After` says how many seconds until a request gets through.",
+        scope: Scope::TakesToken,
+        retry_after: true,
+    },
+    SharedAnswer {
+        status: "431",
+        description: "The request's header fields total more than `header_limit_bytes`; nothing \
+            was done.",
+        scope: Scope::Every,
+        retry_after: false,
+    },
+    SharedAnswer {
+        status: "500",
+        description: "An internal error; its cause is logged, not sent.",
+        scope: Scope::Every,
+        retry_after: false,
+    },
+    SharedAnswer {
+        status: "503",
+        description: "The database is unavailable (it could not be reached within \
+            `database_acquire_timeout_seconds`, or refused the write); nothing was stored. \
+            `Retry-After` says when to try again.",
+        scope: Scope::UsesDatabase,
+        retry_after: true,
+    },
+];
 
 /// Routes that answer without touching the database.
 const WITHOUT_DATABASE: [&str; 2] = ["/healthz", "/openapi.json"];
+
+/// The `Retry-After` header of a 429 or 503.
+fn retry_after_header() -> Header {
+    HeaderBuilder::new()
+        .schema(
+            ObjectBuilder::new()
+                .schema_type(Type::Integer)
+                .minimum(Some(1)),
+        )
+        .description(Some("Seconds to wait before trying again."))
+        .build()
+}
 
 impl Modify for SharedAnswers {
     fn modify(&self, document: &mut Document) {
@@ -193,19 +292,6 @@ impl Modify for SharedAnswers {
                     .build(),
             ),
         );
-        let error = |description: &str| -> RefOr<utoipa::openapi::Response> {
-            RefOr::T(
-                ResponseBuilder::new()
-                    .description(description)
-                    .content(
-                        "application/json",
-                        ContentBuilder::new()
-                            .schema(Some(Ref::from_schema_name("ErrorBody")))
-                            .build(),
-                    )
-                    .build(),
-            )
-        };
         for (path, item) in document.paths.paths.iter_mut() {
             let operations = [
                 &mut item.get,
@@ -223,28 +309,48 @@ impl Modify for SharedAnswers {
                         .iter()
                         .any(|r| *r != utoipa::openapi::security::SecurityRequirement::default())
                 });
-                let answers = &mut operation.responses.responses;
-                let mut add = |status: &str, description: &str| {
-                    answers
-                        .entry(status.to_owned())
-                        .or_insert_with(|| error(description));
-                };
-                if takes_token {
-                    add("401", "No token, or one that is unknown or revoked.");
-                    add("403", "A valid token whose role may not do this.");
-                }
-                add(
-                    "408",
-                    "The request took longer than `request_timeout_seconds`.",
-                );
-                add("500", "An internal error; its cause is logged, not sent.");
-                if !WITHOUT_DATABASE.contains(&path.as_str()) {
-                    add(
-                        "503",
-                        "The database is unavailable; nothing was stored. Sent with `Retry-After`.",
-                    );
+                let uses_database = !WITHOUT_DATABASE.contains(&path.as_str());
+                for answer in SHARED_ANSWERS {
+                    let applies = match answer.scope {
+                        Scope::Every => true,
+                        Scope::TakesToken => takes_token,
+                        Scope::UsesDatabase => uses_database,
+                        Scope::TakesBody => operation.request_body.is_some(),
+                    };
+                    if applies {
+                        add_answer(&mut operation.responses.responses, answer);
+                    }
                 }
             }
         }
+    }
+}
+
+/// Adds `answer` to an operation's responses, or its `Retry-After` header to the operation's own
+/// description of that status.
+fn add_answer(
+    responses: &mut std::collections::BTreeMap<String, RefOr<utoipa::openapi::Response>>,
+    answer: &SharedAnswer,
+) {
+    let response = responses
+        .entry(answer.status.to_owned())
+        .or_insert_with(|| {
+            RefOr::T(
+                ResponseBuilder::new()
+                    .description(answer.description)
+                    .content(
+                        "application/json",
+                        ContentBuilder::new()
+                            .schema(Some(Ref::from_schema_name("ErrorBody")))
+                            .build(),
+                    )
+                    .build(),
+            )
+        });
+    if let (true, RefOr::T(response)) = (answer.retry_after, response) {
+        response
+            .headers
+            .entry("Retry-After".to_owned())
+            .or_insert_with(retry_after_header);
     }
 }

@@ -82,7 +82,6 @@ fn invalid_readings(details: Vec<Detail>) -> ApiError {
     responses(
         (status = 200, description = "Stored: `accepted` counts newly stored readings (revisions included), not duplicates.", body = Accepted),
         (status = 400, description = "The body is not well-formed JSON, NDJSON or SenML.", body = crate::http::ErrorBody),
-        (status = 413, description = "The body is over the size limit (`body_limit_bytes`).", body = crate::http::ErrorBody),
         (status = 415, description = "A content type other than the three above.", body = crate::http::ErrorBody),
         (status = 422, description = "Invalid readings (unknown station or quantity, a value that is not a finite number, a bad or future time, an unconvertible unit, an unknown field...), each listed in `details`; nothing was stored.", body = crate::http::ErrorBody),
     )

@@ -286,7 +286,6 @@ async fn list_set_aside(
         (status = 200, description = "Recorded: the audit log entry.", body = AuditEntryOut),
         (status = 400, description = "The reading id is not a positive whole number, or the body is not well-formed JSON.", body = crate::http::ErrorBody),
         (status = 404, description = "No result ever set this reading aside.", body = crate::http::ErrorBody),
-        (status = 413, description = "The body is over the size limit.", body = crate::http::ErrorBody),
         (status = 415, description = "The body is not `application/json`.", body = crate::http::ErrorBody),
         (status = 422, description = "A decision other than uphold or overturn, a note over 2000 characters, or an unknown field.", body = crate::http::ErrorBody),
     )

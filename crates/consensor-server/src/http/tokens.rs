@@ -48,7 +48,6 @@ struct TokenOut {
     responses(
         (status = 201, description = "Issued.", body = TokenOut),
         (status = 400, description = "The body is not well-formed JSON.", body = crate::http::ErrorBody),
-        (status = 413, description = "The body is over the size limit.", body = crate::http::ErrorBody),
         (status = 415, description = "The body is not `application/json`.", body = crate::http::ErrorBody),
         (status = 422, description = "An unknown role, stations that do not fit the role, a label over 200 characters, or an unknown field.", body = crate::http::ErrorBody),
     )
