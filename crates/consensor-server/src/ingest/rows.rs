@@ -39,12 +39,15 @@ pub fn decode_ndjson_line(
 }
 
 /// Decodes the fields of one CSV row by the rules of a JSON reading object: `Invalid` lists every
-/// bad field (each with index 0).
+/// bad field (each with index 0), in the order station, quantity, value, unit, observed_at.
 pub fn decode_text_reading(
     fields: &TextReading<'_>,
     now_ms: i64,
     limits: &DecodeLimits,
 ) -> Result<DecodedReading, DecodeError> {
+    // A value that is no number is reported beside the errors of the other fields, as a JSON
+    // reading with several bad fields is: the rest of the row is checked with no value.
+    let mut value_error = None;
     let value = if fields.value.is_empty() {
         Node::Null
     } else {
@@ -53,7 +56,7 @@ pub fn decode_text_reading(
         match json_text::parse(fields.value.as_bytes()) {
             Ok(node @ (Node::Number(_) | Node::OutOfRange(_))) => node,
             _ => {
-                return Err(DecodeError::Invalid(vec![FieldError {
+                value_error = Some(FieldError {
                     index: 0,
                     field: "value".into(),
                     reason: format!(
@@ -61,7 +64,8 @@ pub fn decode_text_reading(
                          there is no value",
                         fields.value
                     ),
-                }]))
+                });
+                Node::Null
             }
         }
     };
@@ -79,7 +83,22 @@ pub fn decode_text_reading(
             Node::String(fields.observed_at.to_owned()),
         ),
     ]);
-    checked(object, now_ms, limits)
+    let result = checked(object, now_ms, limits);
+    let Some(value_error) = value_error else {
+        return result;
+    };
+    let mut errors = match result {
+        Ok(_) => Vec::new(),
+        Err(DecodeError::Invalid(errors)) => errors,
+        Err(other) => return Err(other),
+    };
+    // In the order of the fields (station, quantity, value, unit, observed_at), as for JSON.
+    let at = errors
+        .iter()
+        .position(|error| !matches!(error.field.as_str(), "station" | "quantity"))
+        .unwrap_or(errors.len());
+    errors.insert(at, value_error);
+    Err(DecodeError::Invalid(errors))
 }
 
 fn checked(node: Node, now_ms: i64, limits: &DecodeLimits) -> Result<DecodedReading, DecodeError> {
@@ -178,6 +197,26 @@ mod tests {
             "unit",
             "not a unit code",
         );
+    }
+
+    #[test]
+    fn every_bad_field_of_a_row_is_listed() {
+        // Found by `tests/fuzz_import_rows.rs`: a value that is no number used to hide the other
+        // bad fields of its row. API.md "Ingest": every bad reading is listed by field and reason.
+        let fields = TextReading {
+            station: "ST 014",
+            quantity: "air_temperature",
+            observed_at: "2026-06-01 07:00",
+            value: "NaN",
+            unit: None,
+        };
+        match decode_text_reading(&fields, NOW_MS, &DecodeLimits::default()) {
+            Err(DecodeError::Invalid(errors)) => {
+                let named: Vec<&str> = errors.iter().map(|e| e.field.as_str()).collect();
+                assert_eq!(named, ["station", "value", "observed_at"], "{errors:?}");
+            }
+            other => panic!("expected Invalid, got {other:?}"),
+        }
     }
 
     #[test]
