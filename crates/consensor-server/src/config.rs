@@ -40,11 +40,17 @@ pub struct Config {
     pub database_url: String,
     pub backend: Backend,
     pub database_max_connections: u32,
+    /// `database_acquire_timeout_seconds`: how long a request waits for a pooled database
+    /// connection before it is answered 503 (also when the database cannot be reached at all).
+    pub database_acquire_timeout: Duration,
     pub admin_token: Option<Secret>,
     pub public_read: bool,
     pub body_limit_bytes: usize,
     pub max_readings_per_batch: usize,
     pub request_timeout: Duration,
+    /// `request_head_timeout_seconds`: the time a connection has to send a complete request head,
+    /// from its start or from the previous answer on a keep-alive connection; it is closed after.
+    pub request_head_timeout: Duration,
     pub shutdown_grace: Duration,
     pub rules: Rules,
     pub quantities: Vec<QuantitySpec>,
@@ -184,6 +190,8 @@ struct RawConfig {
     database_url: String,
     #[serde(default = "default_max_connections")]
     database_max_connections: u32,
+    #[serde(default = "default_acquire_timeout")]
+    database_acquire_timeout_seconds: f64,
     #[serde(default)]
     admin_token: Option<String>,
     #[serde(default)]
@@ -194,6 +202,8 @@ struct RawConfig {
     max_readings_per_batch: usize,
     #[serde(default = "default_request_timeout")]
     request_timeout_seconds: f64,
+    #[serde(default = "default_request_head_timeout")]
+    request_head_timeout_seconds: f64,
     #[serde(default = "default_shutdown_grace")]
     shutdown_grace_seconds: f64,
     #[serde(default = "default_far_limit")]
@@ -362,6 +372,12 @@ fn default_database_url() -> String {
 fn default_max_connections() -> u32 {
     8
 }
+/// `StoreOptions::default().acquire_timeout` (10 s).
+fn default_acquire_timeout() -> f64 {
+    consensor_store::StoreOptions::default()
+        .acquire_timeout
+        .as_secs_f64()
+}
 fn default_body_limit() -> usize {
     8 * 1024 * 1024
 }
@@ -369,6 +385,12 @@ fn default_max_readings() -> usize {
     100_000
 }
 fn default_request_timeout() -> f64 {
+    30.0
+}
+/// hyper's own default for its header read timeout (hyper 1.x,
+/// `http1::Builder::header_read_timeout`: "Default is 30 seconds"), which `axum::serve` never
+/// switched on, since it sets no timer.
+fn default_request_head_timeout() -> f64 {
     30.0
 }
 fn default_shutdown_grace() -> f64 {
@@ -488,11 +510,19 @@ impl RawConfig {
             database_url: self.database_url,
             backend,
             database_max_connections: self.database_max_connections,
+            database_acquire_timeout: seconds(
+                "database_acquire_timeout_seconds",
+                self.database_acquire_timeout_seconds,
+            )?,
             admin_token: self.admin_token.map(Secret::new),
             public_read: self.public_read,
             body_limit_bytes: self.body_limit_bytes,
             max_readings_per_batch: self.max_readings_per_batch,
             request_timeout: seconds("request_timeout_seconds", self.request_timeout_seconds)?,
+            request_head_timeout: seconds(
+                "request_head_timeout_seconds",
+                self.request_head_timeout_seconds,
+            )?,
             shutdown_grace: seconds("shutdown_grace_seconds", self.shutdown_grace_seconds)?,
             rules,
             quantities,
@@ -620,6 +650,10 @@ mod tests {
         assert_eq!(config.database_url, "sqlite://consensor.db");
         assert_eq!(config.backend, Backend::Sqlite);
         assert_eq!(config.body_limit_bytes, 8 * 1024 * 1024);
+        // hyper 1.x's default header read timeout (30 s), and the store's own default wait for a
+        // pooled connection (10 s, `StoreOptions::default()`).
+        assert_eq!(config.request_head_timeout, Duration::from_secs(30));
+        assert_eq!(config.database_acquire_timeout, Duration::from_secs(10));
         assert_eq!(config.quantities.len(), 10);
         assert!(!config.public_read);
     }
@@ -773,6 +807,30 @@ mod tests {
             format!("{error:#}").contains("rate_limit.burst"),
             "{error:#}"
         );
+    }
+
+    #[test]
+    fn head_and_acquire_timeouts() {
+        let config = Config::load(
+            None,
+            env(&[
+                ("CONSENSOR_REQUEST_HEAD_TIMEOUT_SECONDS", "0.5"),
+                ("CONSENSOR_DATABASE_ACQUIRE_TIMEOUT_SECONDS", "2"),
+            ]),
+            &[],
+        )
+        .unwrap();
+        assert_eq!(config.request_head_timeout, Duration::from_millis(500));
+        assert_eq!(config.database_acquire_timeout, Duration::from_secs(2));
+        // Zero would mean "close every connection at once" or "never wait": refused, by name.
+        for key in [
+            "request_head_timeout_seconds",
+            "database_acquire_timeout_seconds",
+        ] {
+            let variable = format!("CONSENSOR_{}", key.to_uppercase());
+            let error = Config::load(None, env(&[(&variable, "0")]), &[]).unwrap_err();
+            assert!(format!("{error:#}").contains(key), "{error:#}");
+        }
     }
 
     #[test]

@@ -4,7 +4,8 @@
 //! - a private PostgreSQL server, started by the test, is stopped with `pg_ctl stop -m immediate`
 //!   while batches are being posted (one of them certainly in the middle of its transaction) and
 //!   then started again: every answer is 200 or 503 with `Retry-After` and the contract's error
-//!   body, no batch is stored in part, a batch sent while the server is unreachable is refused,
+//!   body, no batch is stored in part, a batch sent while the server is unreachable is refused
+//!   within `database_acquire_timeout_seconds` (set to 2 s) plus a margin,
 //!   `/readyz` says 503 while the server is down and 200 once it is back, the process reconnects by
 //!   itself and its worker catches up;
 //! - an SQLite database opened read-only, and one on a full (loop-mounted, 16 MiB) file system: 503
@@ -419,10 +420,19 @@ async fn postgres_stopped_mid_ingest_answers_503_stores_no_partial_batch_and_rec
     let postgres = Arc::new(postgres);
     // A worker step cut off by the outage after it claimed intervals leaves those claims until
     // they are stale (300 s by default, also for the process's own worker); a short stale time lets
-    // the worker take them up again within the test.
+    // the worker take them up again within the test. A request waits at most
+    // `database_acquire_timeout_seconds` for a connection while the server is unreachable; a
+    // short one (the default is 10 s) is checked below.
+    let acquire_timeout = Duration::from_secs(2);
     let (child, base) = start(
         &postgres.url(),
-        &[("CONSENSOR_WORKER__STALE_CLAIM_SECONDS", "2")],
+        &[
+            ("CONSENSOR_WORKER__STALE_CLAIM_SECONDS", "2"),
+            (
+                "CONSENSOR_DATABASE_ACQUIRE_TIMEOUT_SECONDS",
+                &acquire_timeout.as_secs().to_string(),
+            ),
+        ],
     );
     let client = client();
     let stations: Vec<String> = (0..10).map(|i| format!("OF-{i:02}")).collect();
@@ -511,8 +521,10 @@ async fn postgres_stopped_mid_ingest_answers_503_stores_no_partial_batch_and_rec
         || count(stopped_at, 503) >= 1,
     )
     .await;
-    // A batch sent while the server is unreachable is refused too (after the pool's acquire
-    // timeout, 10 s, during which it keeps trying to connect).
+    // A batch sent while the server is unreachable is refused too, once the pool has tried to
+    // connect for `database_acquire_timeout_seconds`: within that bound plus a margin for a loaded
+    // test machine (and well before the 10 s default, so the setting is what bounds it).
+    let sent_at = Instant::now();
     let unreachable = post_batch(
         &client,
         &base,
@@ -522,7 +534,13 @@ async fn postgres_stopped_mid_ingest_answers_503_stores_no_partial_batch_and_rec
         UNREACHABLE_BATCH,
     )
     .await;
+    let waited = sent_at.elapsed();
     assert_unavailable(&unreachable, "a batch sent while PostgreSQL is down");
+    assert!(
+        waited < acquire_timeout + Duration::from_secs(3),
+        "the 503 came {waited:?} after the batch was sent; the acquire timeout is \
+         {acquire_timeout:?}"
+    );
 
     let starting = postgres.clone();
     tokio::task::spawn_blocking(move || starting.start())

@@ -1,11 +1,11 @@
 //! Hostile requests against the real server on a random port: deep nesting, very long strings and
-//! ids, oversized headers, and clients that trickle their body. Each must get a clean answer in the
-//! contract's error format (or have its connection closed), never crash the server; after each, the
-//! server still answers.
+//! ids, oversized headers, and clients that send their request head slowly or trickle their body.
+//! Each must get a clean answer in the contract's error format (or have its connection closed),
+//! never crash the server; after each, the server still answers.
 
 mod common;
 
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use common::{TestServer, ADMIN};
 use consensor_store::testing::TestDatabase;
@@ -341,5 +341,136 @@ async fn answers_made_outside_the_handlers_carry_the_contract_error_body() {
     assert!(response.headers().contains_key("allow"));
     let body: Value = response.json().await.unwrap();
     assert_error_body(&body, "method_not_allowed");
+    server.stop().await;
+}
+
+/// Reads from `stream` until the server closes the connection or `bound` passes; returns what was
+/// read and whether the connection was closed (end of stream or a reset) within the bound.
+async fn read_until_closed(stream: &mut TcpStream, bound: Duration) -> (String, bool) {
+    let mut response = Vec::new();
+    let mut buffer = [0u8; 4096];
+    let closed = tokio::time::timeout(bound, async {
+        loop {
+            match stream.read(&mut buffer).await {
+                Ok(0) | Err(_) => break,
+                Ok(n) => response.extend_from_slice(&buffer[..n]),
+            }
+        }
+    })
+    .await
+    .is_ok();
+    (String::from_utf8_lossy(&response).into_owned(), closed)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_client_sending_its_request_head_slowly_is_cut_off() {
+    // A one-second head timeout (`request_head_timeout_seconds`), so the test is short; the
+    // connection must be closed within it plus a margin for a loaded test machine.
+    const HEAD_TIMEOUT: Duration = Duration::from_secs(1);
+    const MARGIN: Duration = Duration::from_secs(4);
+    let server = TestServer::start(
+        TestDatabase::sqlite(),
+        &[("CONSENSOR_REQUEST_HEAD_TIMEOUT_SECONDS", "1")],
+    )
+    .await;
+    let address = server.base.trim_start_matches("http://").to_owned();
+
+    // Half a request head, then nothing: before, such a connection stayed open for ever (the
+    // request timeout starts only once the head has arrived). The bound on the read is far
+    // beyond the head timeout, so a server that never closes fails the test instead of hanging it.
+    let mut stream = TcpStream::connect(&address).await.unwrap();
+    let started = Instant::now();
+    stream
+        .write_all(format!("GET /healthz HTTP/1.1\r\nHost: {address}\r\nX-Half: ").as_bytes())
+        .await
+        .unwrap();
+    let (response, closed) = read_until_closed(&mut stream, Duration::from_secs(30)).await;
+    let elapsed = started.elapsed();
+    assert!(
+        closed,
+        "the half-sent head kept its connection open: {response}"
+    );
+    assert!(
+        elapsed < HEAD_TIMEOUT + MARGIN,
+        "closed only after {elapsed:?}"
+    );
+    // hyper closes such a connection without an answer; a 408 (RFC 9110 §15.5.9) would do too.
+    assert!(
+        response.is_empty() || response.starts_with("HTTP/1.1 408"),
+        "{response}"
+    );
+
+    // A head trickled one byte every 200 ms is never idle for a whole second, and is cut off all
+    // the same: the bound is on the whole head, not on the pause between bytes.
+    let mut stream = TcpStream::connect(&address).await.unwrap();
+    let started = Instant::now();
+    let head = format!(
+        "GET /healthz HTTP/1.1\r\nHost: {address}\r\nX-Slow: {}",
+        "s".repeat(200)
+    );
+    let mut closed = false;
+    for byte in head.as_bytes() {
+        if stream.write_all(&[*byte]).await.is_err() {
+            closed = true;
+            break;
+        }
+        let mut probe = [0u8; 1];
+        match tokio::time::timeout(Duration::from_millis(200), stream.read(&mut probe)).await {
+            Ok(Ok(0)) | Ok(Err(_)) => {
+                closed = true;
+                break;
+            }
+            Ok(Ok(_)) => panic!("an answer to a head that was never completed"),
+            Err(_) => {}
+        }
+    }
+    let elapsed = started.elapsed();
+    assert!(closed, "the trickled head kept its connection open");
+    assert!(
+        elapsed < HEAD_TIMEOUT + MARGIN,
+        "closed only after {elapsed:?}"
+    );
+
+    // A whole head sent at once is answered as usual, on a fresh connection ...
+    let response = raw_exchange(
+        &address,
+        format!("GET /healthz HTTP/1.1\r\nHost: {address}\r\nConnection: close\r\n\r\n").as_bytes(),
+        Duration::from_secs(20),
+    )
+    .await;
+    assert!(response.starts_with("HTTP/1.1 200"), "{response}");
+    // ... and on a keep-alive connection, twice, with a pause shorter than the timeout between
+    // them.
+    let mut stream = TcpStream::connect(&address).await.unwrap();
+    for round in 0..2 {
+        stream
+            .write_all(format!("GET /healthz HTTP/1.1\r\nHost: {address}\r\n\r\n").as_bytes())
+            .await
+            .unwrap();
+        let mut answer = Vec::new();
+        let mut buffer = [0u8; 1024];
+        // `/healthz` answers `{"status":"ok"}`: read until the whole body is in.
+        while !String::from_utf8_lossy(&answer).contains("\"ok\"}") {
+            let n = tokio::time::timeout(Duration::from_secs(10), stream.read(&mut buffer))
+                .await
+                .expect("an answer in time")
+                .expect("read");
+            assert!(n > 0, "round {round}: closed before the answer");
+            answer.extend_from_slice(&buffer[..n]);
+        }
+        assert!(answer.starts_with(b"HTTP/1.1 200"), "round {round}");
+        tokio::time::sleep(Duration::from_millis(300)).await;
+    }
+    // An idle keep-alive connection is closed after the same time: it is waiting for a head.
+    let (_, closed) = read_until_closed(&mut stream, HEAD_TIMEOUT + MARGIN).await;
+    assert!(closed, "an idle keep-alive connection stayed open");
+
+    // A real client with a fresh connection pool (none of its connections closed under it).
+    let client = reqwest::Client::builder()
+        .pool_max_idle_per_host(0)
+        .build()
+        .unwrap();
+    let response = client.get(server.url("/healthz")).send().await.unwrap();
+    assert_eq!(response.status(), 200);
     server.stop().await;
 }

@@ -4,7 +4,6 @@
 
 mod common;
 
-use std::net::SocketAddr;
 use std::sync::Arc;
 
 use common::{TestClock, TestServer, ADMIN, T0_MS};
@@ -136,7 +135,7 @@ async fn without_a_configured_rate_there_is_no_limit() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn anonymous_public_reads_are_limited_per_peer_address() {
-    // The real app on a random port, served with connection info so the peer address is known.
+    // The real server on a random port (`serve::run`, which gives each request its peer address).
     let database = TestDatabase::sqlite();
     let mut env: Vec<(String, String)> = vec![
         ("CONSENSOR_DATABASE_URL".into(), database.url.clone()),
@@ -155,16 +154,10 @@ async fn anonymous_public_reads_are_limited_per_peer_address() {
             .unwrap();
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let base = format!("http://{}", listener.local_addr().unwrap());
-    let app =
-        consensor_server::http::app(state).into_make_service_with_connect_info::<SocketAddr>();
     let (stop, stopped) = tokio::sync::oneshot::channel::<()>();
-    let server = tokio::spawn(async move {
-        axum::serve(listener, app)
-            .with_graceful_shutdown(async move {
-                let _ = stopped.await;
-            })
-            .await
-    });
+    let server = tokio::spawn(consensor_server::serve::run(listener, state, async move {
+        let _ = stopped.await;
+    }));
     let client = reqwest::Client::new();
     let url = format!("{base}/v1/areas");
 
