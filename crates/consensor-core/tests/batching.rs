@@ -90,10 +90,7 @@ fn network() -> impl Strategy<Value = (Vec<Vec<Reading>>, Vec<u64>)> {
     let minutes = 9 * 60;
     (
         prop::collection::vec(
-            (
-                prop::collection::vec(minute_kind(), minutes),
-                -20i32..20,
-            ),
+            (prop::collection::vec(minute_kind(), minutes), -20i32..20),
             4,
         ),
         prop::collection::vec((0usize..4, 0usize..minutes), 0..6),
@@ -198,7 +195,10 @@ fn judged_once(
                     // A station with readings only in the history takes part with no interval
                     // readings, as it does in `screen`.
                     let from = rules.chain_start(start);
-                    if !readings.iter().any(|r| r.observed_at_ms >= from && r.observed_at_ms < end) {
+                    if !readings
+                        .iter()
+                        .any(|r| r.observed_at_ms >= from && r.observed_at_ms < end)
+                    {
                         return None;
                     }
                     Some(JudgedStation {

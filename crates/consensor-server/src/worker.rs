@@ -315,7 +315,13 @@ fn decide_run(
     let mut spans: Vec<(usize, usize)> = Vec::with_capacity(data.stations.len());
     for series in &data.stations {
         let from = verdicts.len();
-        screen.judge(&judging, &series.readings, run_start, run_end, &mut verdicts);
+        screen.judge(
+            &judging,
+            &series.readings,
+            run_start,
+            run_end,
+            &mut verdicts,
+        );
         spans.push((
             series
                 .readings

@@ -345,7 +345,8 @@ impl IntervalScreen {
                 input.end_ms,
                 &mut self.verdicts,
             );
-            self.stations.push(StationWork::new(first, self.verdicts.len()));
+            self.stations
+                .push(StationWork::new(first, self.verdicts.len()));
         }
         let interval_readings = |index: usize| {
             let station = &input.stations[index];
@@ -545,7 +546,8 @@ impl IntervalScreen {
         // The records, station by station in time order.
         for (index, work) in self.stations.iter().enumerate() {
             let (station, readings) = interval_readings(index);
-            for (&Judged(verdict), reading) in self.verdicts[work.first..work.end].iter().zip(readings)
+            for (&Judged(verdict), reading) in
+                self.verdicts[work.first..work.end].iter().zip(readings)
             {
                 if let Some(record) = record_for(reading, station, verdict, work, cross, rules) {
                     outcome.set_aside.push(record);
@@ -671,8 +673,8 @@ fn judge_chain(
             "readings of one station must be sorted by time without repeats"
         );
         previous_time = time;
-        let overturned = !judging.overturned.is_empty()
-            && judging.overturned.binary_search(&reading.id).is_ok();
+        let overturned =
+            !judging.overturned.is_empty() && judging.overturned.binary_search(&reading.id).is_ok();
         let verdict = match reading.value {
             Some(value) if overturned => {
                 window.retire_up_to(time - rules.flat_window_ms);
@@ -722,16 +724,15 @@ fn interval_values<'a>(
     readings: &'a [Reading],
     keep: impl Fn(&Verdict) -> bool + 'a,
 ) -> impl Iterator<Item = f64> + 'a {
-    verdicts
-        .iter()
-        .zip(readings)
-        .filter_map(move |(Judged(verdict), reading)| {
+    verdicts.iter().zip(readings).filter_map(
+        move |(Judged(verdict), reading)| {
             if keep(verdict) {
                 reading.value
             } else {
                 None
             }
-        })
+        },
+    )
 }
 
 /// A station's value: the median of `values` (the circular median for directions).
