@@ -68,6 +68,20 @@ impl From<sqlx::Error> for StoreError {
     }
 }
 
+/// Errors of the worker's direct SQLite read (`sqlite_read.rs`), classified like sqlx's.
+impl From<rusqlite::Error> for StoreError {
+    fn from(error: rusqlite::Error) -> Self {
+        match error {
+            rusqlite::Error::SqliteFailure(ref failure, _)
+                if is_unavailable_sqlite_code(i64::from(failure.extended_code)) =>
+            {
+                StoreError::Unavailable(error.to_string())
+            }
+            other => StoreError::Other(other.to_string()),
+        }
+    }
+}
+
 impl From<sqlx::migrate::MigrateError> for StoreError {
     fn from(error: sqlx::migrate::MigrateError) -> Self {
         match error {

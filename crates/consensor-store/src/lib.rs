@@ -55,6 +55,7 @@ mod results;
 mod results_sql;
 mod sql;
 mod sqlite;
+mod sqlite_read;
 #[cfg(feature = "testing")]
 pub mod testing;
 

@@ -396,6 +396,16 @@ impl Store for PostgresStore {
         Ok(claimed)
     }
 
+    async fn load_interval(
+        &self,
+        area_id: i64,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> Result<crate::IntervalData, StoreError> {
+        results_shared::load_interval(&self.pool, area_id, quantity, from_ms, to_ms).await
+    }
+
     crate::results_sql::result_store_methods!();
 
     async fn close(&self) {

@@ -41,6 +41,111 @@ pub struct IntervalData {
     pub overturned: HashSet<u64>,
 }
 
+/// The worker's read of one area and quantity over a time range, in three queries whose parameters
+/// are `$1` area id, `$2` quantity key, `$3`..`$4` the range: the area's stations; each station's
+/// readings, one range of the station-first index (migration 0003) per station, driven by the
+/// stations (`CROSS JOIN` keeps that order on SQLite) in (time, revision) order; the reviews of
+/// those readings, few, in (reading, review) order.
+pub(crate) const LOAD_STATIONS_SQL: &str =
+    "SELECT id, key FROM stations WHERE area_id = $1 ORDER BY key";
+pub(crate) const LOAD_READINGS_SQL: &str =
+    "SELECT s.id, r.id, r.observed_at_ms, r.value, r.value_as_sent \
+     FROM stations s CROSS JOIN readings r \
+     WHERE s.area_id = $1 AND r.station_id = s.id \
+     AND r.quantity_id = (SELECT id FROM quantities WHERE key = $2) \
+     AND r.observed_at_ms >= $3 AND r.observed_at_ms < $4 \
+     ORDER BY s.id, r.observed_at_ms, r.revision";
+pub(crate) const LOAD_REVIEWS_SQL: &str = "SELECT v.reading_id, v.decision FROM reviews v \
+     JOIN readings r ON r.id = v.reading_id \
+     JOIN stations s ON s.id = r.station_id \
+     WHERE s.area_id = $1 \
+     AND r.quantity_id = (SELECT id FROM quantities WHERE key = $2) \
+     AND r.observed_at_ms >= $3 AND r.observed_at_ms < $4 \
+     ORDER BY v.reading_id, v.id";
+
+/// One row of the worker's read: station id, reading id, observed_at_ms, value, value as sent; in
+/// (station, observed_at, revision) order.
+pub(crate) type ReadingRow = (i64, i64, i64, Option<f64>, Option<f64>);
+
+/// Builds the stations' series from the area's stations (id, key; in key order) and the reading rows:
+/// of several revisions of one reading the last (highest) is kept; stations without readings are
+/// left out. Used by every way of reading the rows, so they all give the same `IntervalData`.
+pub(crate) fn assemble_series<E>(
+    stations: Vec<(i64, String)>,
+    rows: impl Iterator<Item = Result<ReadingRow, E>>,
+) -> Result<Vec<StationSeries>, crate::StoreError>
+where
+    crate::StoreError: From<E>,
+{
+    let mut series: Vec<StationSeries> = stations
+        .into_iter()
+        .map(|(station_id, station_key)| StationSeries {
+            station_id,
+            station_key,
+            readings: Vec::new(),
+        })
+        .collect();
+    let mut by_id: Vec<(i64, usize)> = series
+        .iter()
+        .enumerate()
+        .map(|(index, station)| (station.station_id, index))
+        .collect();
+    by_id.sort_unstable();
+    let mut current: Option<(i64, usize)> = None;
+    for row in rows {
+        let (station_id, id, observed_at_ms, value, value_as_sent) = row?;
+        let index = match current {
+            Some((id, index)) if id == station_id => index,
+            _ => {
+                let found = by_id
+                    .binary_search_by_key(&station_id, |&(id, _)| id)
+                    .map_err(|_| {
+                        crate::StoreError::Other(format!(
+                            "station {station_id} left its area during a read"
+                        ))
+                    })?;
+                current = Some(by_id[found]);
+                by_id[found].1
+            }
+        };
+        let reading = Reading {
+            id: reading_id_for_core(id)?,
+            observed_at_ms,
+            value,
+            value_as_sent,
+        };
+        let readings = &mut series[index].readings;
+        match readings.last_mut() {
+            // A higher revision of the same reading: it replaces the one before.
+            Some(last) if last.observed_at_ms == observed_at_ms => *last = reading,
+            _ => readings.push(reading),
+        }
+    }
+    series.retain(|station| !station.readings.is_empty());
+    Ok(series)
+}
+
+/// The readings whose latest review is `overturn`, from (reading id, decision) rows ordered by
+/// reading id and then by review (the last row of a reading is its latest decision).
+pub(crate) fn overturned_of(
+    reviews: Vec<(i64, String)>,
+) -> Result<HashSet<u64>, crate::StoreError> {
+    let mut overturned = HashSet::new();
+    let mut rows = reviews.into_iter().peekable();
+    while let Some((reading_id, decision)) = rows.next() {
+        let latest = rows.peek().is_none_or(|next| next.0 != reading_id);
+        if latest && decision == ReviewDecision::Overturn.as_str() {
+            overturned.insert(reading_id_for_core(reading_id)?);
+        }
+    }
+    Ok(overturned)
+}
+
+/// A reading's row id as the core's `Reading::id`.
+pub(crate) fn reading_id_for_core(id: i64) -> Result<u64, crate::StoreError> {
+    u64::try_from(id).map_err(|_| crate::StoreError::Other(format!("negative reading id {id}")))
+}
+
 /// One station's current readings of one quantity, oldest first.
 #[derive(Debug, Clone, PartialEq)]
 pub struct StationSeries {

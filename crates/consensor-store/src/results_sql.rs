@@ -12,7 +12,7 @@ pub(crate) const ROWS_PER_INSERT: usize = 1_000;
 macro_rules! result_queries {
     ($database:ty, $connection:ty) => {
         pub(crate) mod results_shared {
-            use consensor_core::checks::{IntervalOutcome, Point, Reading, Rule, Status};
+            use consensor_core::checks::{IntervalOutcome, Point, Rule, Status};
             use sqlx::{Pool, QueryBuilder, Row};
 
             use crate::batch::AttemptError;
@@ -20,7 +20,7 @@ macro_rules! result_queries {
             use crate::{
                 AuditFilter, ClaimedBucket, IntervalData, Page, ReadingCounts, ResultRow,
                 ReviewDecision, ReviewRecord, ReviewState, ReviewSummary, SetAsideCursor,
-                SetAsideFilter, SetAsideRow, StationResidual, StationSeries, StoreError,
+                SetAsideFilter, SetAsideRow, StationResidual, StoreError,
                 StoredResult,
             };
 
@@ -41,100 +41,33 @@ macro_rules! result_queries {
                 to_ms: i64,
             ) -> Result<IntervalData, StoreError> {
                 let stations: Vec<(i64, String)> =
-                    sqlx::query_as("SELECT id, key FROM stations WHERE area_id = $1 ORDER BY key")
+                    sqlx::query_as(crate::results::LOAD_STATIONS_SQL)
                         .bind(area_id)
                         .fetch_all(pool)
                         .await?;
-                let rows: Vec<(i64, i64, i64, Option<f64>, Option<f64>)> = sqlx::query_as(
-                    "SELECT s.id, r.id, r.observed_at_ms, r.value, r.value_as_sent \
-                     FROM stations s CROSS JOIN readings r \
-                     WHERE s.area_id = $1 AND r.station_id = s.id \
-                     AND r.quantity_id = (SELECT id FROM quantities WHERE key = $2) \
-                     AND r.observed_at_ms >= $3 AND r.observed_at_ms < $4 \
-                     ORDER BY s.id, r.observed_at_ms, r.revision",
-                )
+                let rows: Vec<crate::results::ReadingRow> =
+                    sqlx::query_as(crate::results::LOAD_READINGS_SQL)
                 .bind(area_id)
                 .bind(quantity)
                 .bind(from_ms)
                 .bind(to_ms)
                 .fetch_all(pool)
                 .await?;
-                let mut series: Vec<StationSeries> = stations
-                    .into_iter()
-                    .map(|(station_id, station_key)| StationSeries {
-                        station_id,
-                        station_key,
-                        readings: Vec::new(),
-                    })
-                    .collect();
-                let mut by_id: Vec<(i64, usize)> = series
-                    .iter()
-                    .enumerate()
-                    .map(|(index, station)| (station.station_id, index))
-                    .collect();
-                by_id.sort_unstable();
-                let mut current: Option<(i64, usize)> = None;
-                for (station_id, id, observed_at_ms, value, value_as_sent) in rows {
-                    let index = match current {
-                        Some((id, index)) if id == station_id => index,
-                        _ => {
-                            let found = by_id
-                                .binary_search_by_key(&station_id, |&(id, _)| id)
-                                .map_err(|_| {
-                                    StoreError::Other(format!(
-                                        "station {station_id} left its area during a read"
-                                    ))
-                                })?;
-                            current = Some(by_id[found]);
-                            by_id[found].1
-                        }
-                    };
-                    let reading = Reading {
-                        id: reading_id_for_core(id)?,
-                        observed_at_ms,
-                        value,
-                        value_as_sent,
-                    };
-                    let readings = &mut series[index].readings;
-                    match readings.last_mut() {
-                        // A higher revision of the same reading: it replaces the one before.
-                        Some(last) if last.observed_at_ms == observed_at_ms => *last = reading,
-                        _ => readings.push(reading),
-                    }
-                }
-                series.retain(|station| !station.readings.is_empty());
-                let reviews: Vec<(i64, String)> = sqlx::query_as(
-                    "SELECT v.reading_id, v.decision FROM reviews v \
-                     JOIN readings r ON r.id = v.reading_id \
-                     JOIN stations s ON s.id = r.station_id \
-                     WHERE s.area_id = $1 \
-                     AND r.quantity_id = (SELECT id FROM quantities WHERE key = $2) \
-                     AND r.observed_at_ms >= $3 AND r.observed_at_ms < $4 \
-                     ORDER BY v.reading_id, v.id",
-                )
+                let series = crate::results::assemble_series(
+                    stations,
+                    rows.into_iter().map(Ok::<_, StoreError>),
+                )?;
+                let reviews: Vec<(i64, String)> = sqlx::query_as(crate::results::LOAD_REVIEWS_SQL)
                 .bind(area_id)
                 .bind(quantity)
                 .bind(from_ms)
                 .bind(to_ms)
                 .fetch_all(pool)
                 .await?;
-                let mut data = IntervalData {
+                Ok(IntervalData {
                     stations: series,
-                    ..IntervalData::default()
-                };
-                // Each reading's reviews in order: the last one read is its latest decision.
-                let mut latest: Option<(i64, String)> = None;
-                for review in reviews.into_iter().chain(std::iter::once((0, String::new()))) {
-                    if let Some((reading_id, decision)) = latest.take() {
-                        if reading_id != review.0
-                            && decision == ReviewDecision::Overturn.as_str()
-                        {
-                            data.overturned.insert(reading_id_for_core(reading_id)?);
-                        }
-                    }
-                    latest = Some(review);
-                }
-                Ok(data)
+                    overturned: crate::results::overturned_of(reviews)?,
+                })
             }
 
             /// See `Store::claim_interval_of_reading`. The claim is one UPDATE of the pending row
@@ -965,10 +898,6 @@ macro_rules! result_queries {
                 i64::try_from(limit).unwrap_or(i64::MAX - 1) + 1
             }
 
-            fn reading_id_for_core(id: i64) -> Result<u64, StoreError> {
-                u64::try_from(id).map_err(|_| StoreError::Other(format!("negative reading id {id}")))
-            }
-
             fn count_u32(count: i64) -> Result<u32, StoreError> {
                 u32::try_from(count).map_err(|_| StoreError::Other(format!("bad count {count}")))
             }
@@ -999,16 +928,6 @@ pub(crate) use result_queries;
 /// `impl Store`, next to its own `claim_buckets`.
 macro_rules! result_store_methods {
     () => {
-        async fn load_interval(
-            &self,
-            area_id: i64,
-            quantity: &str,
-            from_ms: i64,
-            to_ms: i64,
-        ) -> Result<crate::IntervalData, StoreError> {
-            results_shared::load_interval(&self.pool, area_id, quantity, from_ms, to_ms).await
-        }
-
         async fn store_result(
             &self,
             bucket: &crate::ClaimedBucket,

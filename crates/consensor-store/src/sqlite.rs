@@ -35,6 +35,8 @@ crate::results_sql::result_queries!(sqlx::Sqlite, sqlx::SqliteConnection);
 #[derive(Debug, Clone)]
 pub struct SqliteStore {
     pool: SqlitePool,
+    /// The worker's bulk read (`None` for an in-memory database).
+    direct: Option<std::sync::Arc<crate::sqlite_read::DirectReader>>,
 }
 
 impl SqliteStore {
@@ -47,6 +49,10 @@ impl SqliteStore {
             .synchronous(SqliteSynchronous::Full)
             .busy_timeout(options.sqlite_busy_timeout)
             .foreign_keys(true);
+        let direct = crate::sqlite_read::DirectReader::for_file(
+            connect_options.get_filename(),
+            options.sqlite_busy_timeout,
+        );
         let pool = SqlitePoolOptions::new()
             .max_connections(options.max_connections)
             .acquire_timeout(options.acquire_timeout)
@@ -65,7 +71,7 @@ impl SqliteStore {
             .connect_with(connect_options)
             .await?;
         MIGRATOR.run(&pool).await?;
-        Ok(SqliteStore { pool })
+        Ok(SqliteStore { pool, direct })
     }
 
     /// The underlying pool, for tests and the benchmark harness that need raw SQL (checking a
@@ -440,9 +446,156 @@ impl Store for SqliteStore {
             .await?)
     }
 
+    /// Through the direct reader (`sqlite_read.rs`) for a database file, through the pool for an
+    /// in-memory database.
+    async fn load_interval(
+        &self,
+        area_id: i64,
+        quantity: &str,
+        from_ms: i64,
+        to_ms: i64,
+    ) -> Result<crate::IntervalData, StoreError> {
+        match &self.direct {
+            Some(reader) => {
+                reader
+                    .load_interval(area_id, quantity, from_ms, to_ms)
+                    .await
+            }
+            None => {
+                results_shared::load_interval(&self.pool, area_id, quantity, from_ms, to_ms).await
+            }
+        }
+    }
+
     crate::results_sql::result_store_methods!();
 
     async fn close(&self) {
         self.pool.close().await;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::testing::TestDatabase;
+
+    /// The direct read and the pool's read give the same `IntervalData`: current revisions only,
+    /// stations in key order, a reading whose latest review is an overturn (and not one whose
+    /// overturn was later upheld). Both reads are this crate's own; the expected facts are API.md's
+    /// ("nothing is overwritten"; the latest decision counts).
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn direct_read_equals_the_pool_read() {
+        let database = TestDatabase::sqlite();
+        let store = SqliteStore::connect(&database.url, &StoreOptions::default())
+            .await
+            .expect("open");
+        assert!(
+            store.direct.is_some(),
+            "a database file gets the direct reader"
+        );
+        for (area, station) in [("north", "ST-2"), ("north", "ST-1"), ("south", "ST-9")] {
+            store
+                .upsert_area(&NewArea {
+                    key: area.to_owned(),
+                    name: area.to_owned(),
+                    interval_ms: 600_000,
+                })
+                .await
+                .expect("area");
+            store
+                .upsert_station(&NewStation {
+                    key: station.to_owned(),
+                    area_key: area.to_owned(),
+                    name: station.to_owned(),
+                    lat: None,
+                    lon: None,
+                    elevation_m: None,
+                })
+                .await
+                .expect("station");
+        }
+        const BASE: i64 = 1_780_000_200_000;
+        let reading = |station: &str, minute: i64, value: Option<f64>| NewReading {
+            station: station.to_owned(),
+            quantity: "air_temperature".to_owned(),
+            observed_at_ms: BASE + minute * 60_000,
+            value,
+            value_as_sent: value,
+            unit_as_sent: None,
+        };
+        let mut batch = Vec::new();
+        for minute in -5..25 {
+            batch.push(reading("ST-1", minute, Some(10.0 + minute as f64 / 10.0)));
+            batch.push(reading("ST-2", minute, (minute % 7 != 3).then_some(11.0)));
+            batch.push(reading("ST-9", minute, Some(30.0)));
+        }
+        store.insert_batch(&batch, BASE).await.expect("batch");
+        // Revisions of two readings: only the newest is current.
+        store
+            .insert_batch(&[reading("ST-1", 4, Some(99.0))], BASE + 1)
+            .await
+            .expect("revision");
+        store
+            .insert_batch(&[reading("ST-1", 4, Some(12.5))], BASE + 2)
+            .await
+            .expect("second revision");
+        let pool = &store.pool;
+        let id_of = |minute: i64| async move {
+            sqlx::query_scalar::<_, i64>(
+                "SELECT r.id FROM readings r JOIN stations s ON s.id = r.station_id \
+                 WHERE s.key = 'ST-2' AND r.observed_at_ms = $1",
+            )
+            .bind(BASE + minute * 60_000)
+            .fetch_one(pool)
+            .await
+            .expect("reading id")
+        };
+        let (kept, reversed) = (id_of(6).await, id_of(8).await);
+        for (reading_id, decision) in [
+            (kept, "uphold"),
+            (kept, "overturn"),
+            (reversed, "overturn"),
+            (reversed, "uphold"),
+        ] {
+            sqlx::query(
+                "INSERT INTO reviews (reading_id, decision, by_token, at_ms) \
+                 VALUES ($1, $2, 'tok_test', $3)",
+            )
+            .bind(reading_id)
+            .bind(decision)
+            .bind(BASE)
+            .execute(&store.pool)
+            .await
+            .expect("review");
+        }
+        let area_id = store.list_areas().await.expect("areas")[0].id;
+        let reader = store.direct.clone().expect("direct reader");
+        for (from, to) in [(BASE, BASE + 600_000), (BASE - 600_000, BASE + 3_600_000)] {
+            let direct = reader
+                .load_interval(area_id, "air_temperature", from, to)
+                .await
+                .expect("direct read");
+            let pooled =
+                results_shared::load_interval(&store.pool, area_id, "air_temperature", from, to)
+                    .await
+                    .expect("pool read");
+            assert_eq!(direct, pooled);
+            assert_eq!(
+                direct.stations.len(),
+                2,
+                "the other area's station is not read"
+            );
+            assert_eq!(direct.stations[0].station_key, "ST-1");
+            assert!(direct.overturned.contains(&(kept as u64)));
+            assert!(!direct.overturned.contains(&(reversed as u64)));
+            let fourth = direct.stations[0]
+                .readings
+                .iter()
+                .find(|r| r.observed_at_ms == BASE + 4 * 60_000)
+                .expect("minute 4");
+            assert_eq!(fourth.value, Some(12.5));
+        }
+        store.close().await;
+        database.finish().await;
     }
 }
