@@ -135,76 +135,130 @@ macro_rules! result_queries {
                 })
             }
 
-            /// Writes one result, its set-aside records and station values, moves the interval's
-            /// latest-revision pointer, and removes (or releases) the pending bucket. Runs inside
-            /// the caller's transaction; a unique violation on the revision means another writer
-            /// stored the same revision first, and the caller retries the whole transaction.
-            pub(crate) async fn store_result(
+            /// Writes a batch of results (at most a few dozen, of distinct intervals), each with its
+            /// set-aside records and station values, moves each interval's latest-revision pointer,
+            /// and removes (or releases) each pending bucket: a handful of multi-row statements for
+            /// the whole batch, not a handful per result. Runs inside the caller's transaction; a
+            /// unique violation on a revision means another writer stored the same revision first,
+            /// and the caller retries the whole transaction.
+            pub(crate) async fn store_results(
                 connection: &mut $connection,
-                bucket: &ClaimedBucket,
-                outcome: &IntervalOutcome,
-                station_ids: &[i64],
-                reasons: &[String],
+                results: &[crate::ResultToStore<'_>],
                 now_ms: i64,
-            ) -> Result<StoredResult, AttemptError> {
-                check_outcome(outcome, station_ids, reasons)?;
-                let point = &outcome.point;
-                let (result_id, revision): (i64, i64) = sqlx::query_as(
+            ) -> Result<Vec<StoredResult>, AttemptError> {
+                let mut keys = std::collections::HashSet::with_capacity(results.len());
+                for result in results {
+                    check_outcome(result.outcome, result.station_ids, result.reasons)?;
+                    let bucket = result.bucket;
+                    if !keys.insert((bucket.area_id, bucket.quantity_id, bucket.bucket_start_ms)) {
+                        return Err(AttemptError::Refused(StoreError::Other(format!(
+                            "interval {} of area {} is twice in one batch of results",
+                            bucket.bucket_start_ms, bucket.area_key
+                        ))));
+                    }
+                }
+                if results.is_empty() {
+                    return Ok(Vec::new());
+                }
+
+                // The results, each with the next revision of its interval. RETURNING names the
+                // interval of each row, since a multi-row INSERT promises no order for it.
+                let mut insert = QueryBuilder::<$database>::new(
                     "INSERT INTO interval_results (area_id, quantity_id, bucket_start_ms, \
                      interval_ms, revision, median, median_low, median_high, mean, mean_all, mad, \
                      spread, ci95_low, ci95_high, huber, stations_used, stations_set_aside, \
-                     status, computed_at_ms) \
-                     VALUES ($1, $2, $3, $4, (SELECT COALESCE(MAX(revision), 0) + 1 \
-                     FROM interval_results WHERE area_id = $1 AND quantity_id = $2 \
-                     AND bucket_start_ms = $3), \
-                     $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18) \
-                     RETURNING id, revision",
-                )
-                .bind(bucket.area_id)
-                .bind(bucket.quantity_id)
-                .bind(bucket.bucket_start_ms)
-                .bind(bucket.interval_ms)
-                .bind(point.median)
-                .bind(point.median_low)
-                .bind(point.median_high)
-                .bind(point.mean)
-                .bind(point.mean_all)
-                .bind(point.mad)
-                .bind(point.spread)
-                .bind(point.ci95_low)
-                .bind(point.ci95_high)
-                .bind(point.huber)
-                .bind(i64::from(point.stations_used))
-                .bind(i64::from(point.stations_set_aside))
-                .bind(point.status.as_str())
-                .bind(now_ms)
-                .fetch_one(&mut *connection)
-                .await?;
+                     status, computed_at_ms) ",
+                );
+                insert.push_values(results, |mut values, result| {
+                    let (bucket, point) = (result.bucket, &result.outcome.point);
+                    values
+                        .push_bind(bucket.area_id)
+                        .push_bind(bucket.quantity_id)
+                        .push_bind(bucket.bucket_start_ms)
+                        .push_bind(bucket.interval_ms)
+                        .push_unseparated(
+                            ", (SELECT COALESCE(MAX(revision), 0) + 1 FROM interval_results \
+                             WHERE area_id = ",
+                        )
+                        .push_bind_unseparated(bucket.area_id)
+                        .push_unseparated(" AND quantity_id = ")
+                        .push_bind_unseparated(bucket.quantity_id)
+                        .push_unseparated(" AND bucket_start_ms = ")
+                        .push_bind_unseparated(bucket.bucket_start_ms)
+                        .push_unseparated(")")
+                        .push_bind(point.median)
+                        .push_bind(point.median_low)
+                        .push_bind(point.median_high)
+                        .push_bind(point.mean)
+                        .push_bind(point.mean_all)
+                        .push_bind(point.mad)
+                        .push_bind(point.spread)
+                        .push_bind(point.ci95_low)
+                        .push_bind(point.ci95_high)
+                        .push_bind(point.huber)
+                        .push_bind(i64::from(point.stations_used))
+                        .push_bind(i64::from(point.stations_set_aside))
+                        .push_bind(point.status.as_str())
+                        .push_bind(now_ms);
+                });
+                insert.push(" RETURNING id, revision, area_id, quantity_id, bucket_start_ms");
+                let returned: Vec<(i64, i64, i64, i64, i64)> =
+                    insert.build_query_as().fetch_all(&mut *connection).await?;
+                let by_interval: std::collections::HashMap<(i64, i64, i64), (i64, i64)> = returned
+                    .into_iter()
+                    .map(|(id, revision, area, quantity, start)| ((area, quantity, start), (id, revision)))
+                    .collect();
+                let mut stored_ids = Vec::with_capacity(results.len());
+                for result in results {
+                    let bucket = result.bucket;
+                    let key = (bucket.area_id, bucket.quantity_id, bucket.bucket_start_ms);
+                    let &(result_id, revision) = by_interval.get(&key).ok_or_else(|| {
+                        AttemptError::Refused(StoreError::Other(format!(
+                            "the result of interval {} of area {} was not returned by its insert",
+                            bucket.bucket_start_ms, bucket.area_key
+                        )))
+                    })?;
+                    stored_ids.push((result_id, revision));
+                }
 
-                sqlx::query(
+                let mut latest = QueryBuilder::<$database>::new(
                     "INSERT INTO interval_latest (area_id, quantity_id, bucket_start_ms, \
-                     revision, result_id) VALUES ($1, $2, $3, $4, $5) \
-                     ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
+                     revision, result_id) ",
+                );
+                latest.push_values(results.iter().zip(&stored_ids), |mut values, (result, &(result_id, revision))| {
+                    values
+                        .push_bind(result.bucket.area_id)
+                        .push_bind(result.bucket.quantity_id)
+                        .push_bind(result.bucket.bucket_start_ms)
+                        .push_bind(revision)
+                        .push_bind(result_id);
+                });
+                latest.push(
+                    " ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
                      revision = excluded.revision, result_id = excluded.result_id \
                      WHERE interval_latest.revision < excluded.revision",
-                )
-                .bind(bucket.area_id)
-                .bind(bucket.quantity_id)
-                .bind(bucket.bucket_start_ms)
-                .bind(revision)
-                .bind(result_id)
-                .execute(&mut *connection)
-                .await?;
+                );
+                latest.build().execute(&mut *connection).await?;
 
-                let records: Vec<(usize, &consensor_core::checks::SetAside)> =
-                    outcome.set_aside.iter().enumerate().collect();
+                let records: Vec<(i64, &[i64], &String, &consensor_core::checks::SetAside)> = results
+                    .iter()
+                    .zip(&stored_ids)
+                    .flat_map(|(result, &(result_id, _))| {
+                        result
+                            .outcome
+                            .set_aside
+                            .iter()
+                            .zip(result.reasons)
+                            .map(move |(record, reason)| (result_id, result.station_ids, reason, record))
+                    })
+                    .collect();
                 for chunk in records.chunks(ROWS_PER_INSERT) {
                     let mut insert = QueryBuilder::<$database>::new(
                         "INSERT INTO set_aside (result_id, reading_id, station_id, \
                          observed_at_ms, rule, reason, score, threshold, consensus_median, \
                          consensus_spread, gap_ms, window_readings, station_value) ",
                     );
-                    insert.push_values(chunk, |mut values, &(index, record)| {
+                    insert.push_values(chunk, |mut values, &(result_id, station_ids, reason, record)| {
                         // check_outcome has verified the handle and that the id fits an i64.
                         values
                             .push_bind(result_id)
@@ -212,7 +266,7 @@ macro_rules! result_queries {
                             .push_bind(station_ids[record.station as usize])
                             .push_bind(record.observed_at_ms)
                             .push_bind(record.rule.as_str())
-                            .push_bind(reasons[index].clone())
+                            .push_bind(reason.clone())
                             .push_bind(record.score)
                             .push_bind(record.threshold)
                             .push_bind(record.consensus_median)
@@ -224,54 +278,93 @@ macro_rules! result_queries {
                     insert.build().execute(&mut *connection).await?;
                 }
 
-                for chunk in outcome.station_values.chunks(ROWS_PER_INSERT) {
+                let station_values: Vec<(i64, i64, &consensor_core::checks::StationValue)> = results
+                    .iter()
+                    .zip(&stored_ids)
+                    .flat_map(|(result, &(result_id, _))| {
+                        result.outcome.station_values.iter().map(move |value| {
+                            (result_id, result.station_ids[value.station as usize], value)
+                        })
+                    })
+                    .collect();
+                for chunk in station_values.chunks(ROWS_PER_INSERT) {
                     let mut insert = QueryBuilder::<$database>::new(
                         "INSERT INTO interval_station_values (result_id, station_id, value, \
                          used, score) ",
                     );
-                    insert.push_values(chunk, |mut values, station_value| {
+                    insert.push_values(chunk, |mut values, &(result_id, station_id, value)| {
                         values
                             .push_bind(result_id)
-                            .push_bind(station_ids[station_value.station as usize])
-                            .push_bind(station_value.value)
-                            .push_bind(station_value.used)
-                            .push_bind(station_value.score);
+                            .push_bind(station_id)
+                            .push_bind(value.value)
+                            .push_bind(value.used)
+                            .push_bind(value.score);
                     });
                     insert.build().execute(&mut *connection).await?;
                 }
 
-                // The bucket is done only if no reading marked it since the claim; otherwise the
+                // A bucket is done only if no reading marked it since the claim; otherwise the
                 // result just stored is already out of date, and releasing the claim lets the
                 // next claim compute it again from the newer readings.
-                let removed = sqlx::query(
-                    "DELETE FROM pending_buckets WHERE area_id = $1 AND quantity_id = $2 \
-                     AND bucket_start_ms = $3 AND mark_count = $4",
-                )
-                .bind(bucket.area_id)
-                .bind(bucket.quantity_id)
-                .bind(bucket.bucket_start_ms)
-                .bind(bucket.mark_count)
-                .execute(&mut *connection)
-                .await?
-                .rows_affected();
-                if removed == 0 {
-                    sqlx::query(
-                        "UPDATE pending_buckets SET claimed_by = NULL, claimed_at_ms = NULL \
-                         WHERE area_id = $1 AND quantity_id = $2 AND bucket_start_ms = $3 \
-                         AND claimed_by = $4",
-                    )
-                    .bind(bucket.area_id)
-                    .bind(bucket.quantity_id)
-                    .bind(bucket.bucket_start_ms)
-                    .bind(&bucket.claimed_by)
-                    .execute(&mut *connection)
-                    .await?;
+                let mut delete = QueryBuilder::<$database>::new("DELETE FROM pending_buckets WHERE ");
+                let mut terms = delete.separated(" OR ");
+                for result in results {
+                    let bucket = result.bucket;
+                    terms
+                        .push("(area_id = ")
+                        .push_bind_unseparated(bucket.area_id)
+                        .push_unseparated(" AND quantity_id = ")
+                        .push_bind_unseparated(bucket.quantity_id)
+                        .push_unseparated(" AND bucket_start_ms = ")
+                        .push_bind_unseparated(bucket.bucket_start_ms)
+                        .push_unseparated(" AND mark_count = ")
+                        .push_bind_unseparated(bucket.mark_count)
+                        .push_unseparated(")");
                 }
-                Ok(StoredResult {
-                    result_id,
-                    revision,
-                    bucket_done: removed > 0,
-                })
+                delete.push(" RETURNING area_id, quantity_id, bucket_start_ms");
+                let removed: std::collections::HashSet<(i64, i64, i64)> = delete
+                    .build_query_as::<(i64, i64, i64)>()
+                    .fetch_all(&mut *connection)
+                    .await?
+                    .into_iter()
+                    .collect();
+                let marked_again: Vec<&ClaimedBucket> = results
+                    .iter()
+                    .map(|result| result.bucket)
+                    .filter(|b| !removed.contains(&(b.area_id, b.quantity_id, b.bucket_start_ms)))
+                    .collect();
+                if !marked_again.is_empty() {
+                    let mut release = QueryBuilder::<$database>::new(
+                        "UPDATE pending_buckets SET claimed_by = NULL, claimed_at_ms = NULL WHERE ",
+                    );
+                    let mut terms = release.separated(" OR ");
+                    for bucket in &marked_again {
+                        terms
+                            .push("(area_id = ")
+                            .push_bind_unseparated(bucket.area_id)
+                            .push_unseparated(" AND quantity_id = ")
+                            .push_bind_unseparated(bucket.quantity_id)
+                            .push_unseparated(" AND bucket_start_ms = ")
+                            .push_bind_unseparated(bucket.bucket_start_ms)
+                            .push_unseparated(" AND claimed_by = ")
+                            .push_bind_unseparated(bucket.claimed_by.as_str())
+                            .push_unseparated(")");
+                    }
+                    release.build().execute(&mut *connection).await?;
+                }
+                Ok(results
+                    .iter()
+                    .zip(stored_ids)
+                    .map(|(result, (result_id, revision))| StoredResult {
+                        result_id,
+                        revision,
+                        bucket_done: removed.contains(&(
+                            result.bucket.area_id,
+                            result.bucket.quantity_id,
+                            result.bucket.bucket_start_ms,
+                        )),
+                    })
+                    .collect())
             }
 
             /// Refuses, before anything is written, an outcome that does not fit the arguments
@@ -936,21 +1029,16 @@ macro_rules! result_store_methods {
             reasons: &[String],
             now_ms: i64,
         ) -> Result<crate::StoredResult, StoreError> {
-            crate::batch::with_retries(|| async {
-                let mut tx = self.begin_write().await?;
-                let stored = results_shared::store_result(
-                    &mut tx,
-                    bucket,
-                    outcome,
-                    station_ids,
-                    reasons,
-                    now_ms,
-                )
-                .await?;
-                tx.commit().await?;
-                Ok(stored)
-            })
-            .await
+            let one = [crate::ResultToStore {
+                bucket,
+                outcome,
+                station_ids,
+                reasons,
+            }];
+            let mut stored = self.store_results(&one, now_ms).await?;
+            stored
+                .pop()
+                .ok_or_else(|| StoreError::Other("no result stored".to_owned()))
         }
 
         async fn release_claims(&self, worker: &str) -> Result<u64, StoreError> {
@@ -991,20 +1079,7 @@ macro_rules! result_store_methods {
             }
             crate::batch::with_retries(|| async {
                 let mut tx = self.begin_write().await?;
-                let mut stored = Vec::with_capacity(results.len());
-                for result in results {
-                    stored.push(
-                        results_shared::store_result(
-                            &mut tx,
-                            result.bucket,
-                            result.outcome,
-                            result.station_ids,
-                            result.reasons,
-                            now_ms,
-                        )
-                        .await?,
-                    );
-                }
+                let stored = results_shared::store_results(&mut tx, results, now_ms).await?;
                 tx.commit().await?;
                 Ok(stored)
             })

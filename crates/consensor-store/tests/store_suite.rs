@@ -12,8 +12,8 @@ use consensor_core::checks::{
 use consensor_store::testing::TestDatabase;
 use consensor_store::{
     AnyStore, AuditFilter, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken,
-    ReadingKey, ReviewDecision, ReviewState, SetAsideCursor, SetAsideFilter, SetAsideRow, Store,
-    StoreError, StoredReading,
+    ReadingKey, ResultToStore, ReviewDecision, ReviewState, SetAsideCursor, SetAsideFilter,
+    SetAsideRow, Store, StoreError, StoredReading,
 };
 
 /// Ten minutes, the interval of the test area.
@@ -110,6 +110,7 @@ on_both_backends!(
     tokens_insert_find_and_revoke,
     claim_then_store_result_removes_the_bucket,
     bucket_marked_again_during_computation_stays_pending,
+    a_batch_of_results_gives_each_interval_its_own_revision_records_and_values,
     stale_claim_is_taken_over_and_fresh_one_is_not,
     concurrent_claimers_never_share_a_bucket,
     load_interval_returns_current_readings_by_station,
@@ -1080,6 +1081,156 @@ async fn bucket_marked_again_during_computation_stays_pending(
     assert_eq!(stored.revision, 2);
     assert!(stored.bucket_done);
     assert_eq!(store.count_pending_buckets().await.expect("pending"), 0);
+}
+
+/// `store_results` writes a batch in a few multi-row statements: each interval must still get its
+/// own revision, its own set-aside records and station values, and its own pending-bucket outcome
+/// (done, or released when a reading marked it again during the computation). The expectations
+/// are API.md's revision and pending rules; the data are this test's own.
+async fn a_batch_of_results_gives_each_interval_its_own_revision_records_and_values(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network_of(store, 2).await;
+    let mut batch = Vec::new();
+    for k in 0..3 {
+        let start = BASE_MS + k * INTERVAL_MS;
+        batch.push(reading("ST-1", "air_temperature", start, 13.0 + k as f64));
+        batch.push(reading("ST-2", "air_temperature", start, 19.0 + k as f64));
+    }
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    let claimed = store
+        .claim_buckets("w1", NOW_MS + 100, 10, STALE_MS, 0)
+        .await
+        .expect("claim");
+    assert_eq!(claimed.len(), 3);
+    // A late reading marks the middle interval again while the worker computes.
+    store
+        .insert_batch(
+            &[reading(
+                "ST-1",
+                "air_temperature",
+                BASE_MS + INTERVAL_MS + 60_000,
+                14.2,
+            )],
+            NOW_MS + 150,
+        )
+        .await
+        .expect("late reading");
+    let ids = station_ids(store).await;
+    let station_ids = [ids["ST-1"], ids["ST-2"]];
+    let mut outcomes = Vec::new();
+    for bucket in &claimed {
+        let k = (bucket.bucket_start_ms - BASE_MS) / INTERVAL_MS;
+        let far = stored(store, "ST-2", "air_temperature", bucket.bucket_start_ms).await;
+        outcomes.push(outcome(
+            point(Some(13.0 + k as f64), 1, 1),
+            vec![far_record(1, &far, 4.0 + k as f64)],
+            vec![
+                StationValue {
+                    station: 0,
+                    value: 13.0 + k as f64,
+                    used: true,
+                    score: Some(0.0),
+                },
+                StationValue {
+                    station: 1,
+                    value: 19.0 + k as f64,
+                    used: false,
+                    score: Some(4.0 + k as f64),
+                },
+            ],
+        ));
+    }
+    let reasons: Vec<Vec<String>> = outcomes.iter().map(reasons_for).collect();
+    let to_store: Vec<ResultToStore<'_>> = claimed
+        .iter()
+        .zip(&outcomes)
+        .zip(&reasons)
+        .map(|((bucket, outcome), reasons)| ResultToStore {
+            bucket,
+            outcome,
+            station_ids: &station_ids,
+            reasons,
+        })
+        .collect();
+    let stored_results = store
+        .store_results(&to_store, NOW_MS + 200)
+        .await
+        .expect("store the batch");
+    let done: Vec<(i64, bool)> = stored_results
+        .iter()
+        .map(|stored| (stored.revision, stored.bucket_done))
+        .collect();
+    assert_eq!(done, vec![(1, true), (1, false), (1, true)]);
+    let distinct: BTreeSet<i64> = stored_results.iter().map(|s| s.result_id).collect();
+    assert_eq!(distinct.len(), 3, "one result row per interval");
+    // Only the interval marked again is pending, and its claim was released at once.
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 1);
+    let again = store
+        .claim_buckets("w2", NOW_MS + 300, 10, STALE_MS, 0)
+        .await
+        .expect("claim again");
+    assert_eq!(again.len(), 1);
+    assert_eq!(again[0].bucket_start_ms, BASE_MS + INTERVAL_MS);
+    assert_eq!(again[0].mark_count, 2);
+    // Each interval's latest result is its own, in time order.
+    let series = store
+        .series(
+            "north-basin",
+            "air_temperature",
+            BASE_MS,
+            BASE_MS + 3 * INTERVAL_MS,
+        )
+        .await
+        .expect("series");
+    let medians: Vec<(i64, Option<f64>, i64)> = series
+        .iter()
+        .map(|row| (row.start_ms, row.point.median, row.revision))
+        .collect();
+    assert_eq!(
+        medians,
+        vec![
+            (BASE_MS, Some(13.0), 1),
+            (BASE_MS + INTERVAL_MS, Some(14.0), 1),
+            (BASE_MS + 2 * INTERVAL_MS, Some(15.0), 1),
+        ]
+    );
+    // Each record went with its own result, with its own reason and score.
+    let page = store
+        .list_set_aside(&SetAsideFilter::default(), 10, None)
+        .await
+        .expect("set-aside");
+    let mut records: Vec<(i64, i64, Option<f64>, String)> = page
+        .items
+        .iter()
+        .map(|row| {
+            (
+                row.bucket_start_ms,
+                row.result_id,
+                row.score,
+                row.reason.clone(),
+            )
+        })
+        .collect();
+    records.sort_by_key(|record| record.0);
+    let expected: Vec<(i64, i64, Option<f64>, String)> = (0..3)
+        .map(|k| {
+            (
+                BASE_MS + k * INTERVAL_MS,
+                stored_results[k as usize].result_id,
+                Some(4.0 + k as f64),
+                reasons[k as usize][0].clone(),
+            )
+        })
+        .collect();
+    assert_eq!(records, expected);
+    // Storing the next computation of all three gives each its second revision.
+    let second = store
+        .store_results(&to_store, NOW_MS + 400)
+        .await
+        .expect("store again");
+    assert!(second.iter().all(|stored| stored.revision == 2));
 }
 
 async fn stale_claim_is_taken_over_and_fresh_one_is_not(
