@@ -80,6 +80,20 @@ pub async fn run_once(
         .context("could not claim pending intervals")?;
     let rules = &state.config.rules;
     let mut outcome = Outcome::default();
+    // Up to RUNS_AT_ONCE runs are in hand at a time, so that one run's reading and deciding overlap
+    // another's storing. Every run is awaited, even after one has failed, so that no run is still
+    // storing when the caller releases this worker's claims.
+    let mut in_flight = tokio::task::JoinSet::new();
+    let mut failure: Option<anyhow::Error> = None;
+    let mut settle = |joined: Result<anyhow::Result<usize>, tokio::task::JoinError>| match joined {
+        Ok(Ok(computed)) => outcome.computed += computed,
+        Ok(Err(error)) => {
+            failure.get_or_insert(error);
+        }
+        Err(error) => {
+            failure.get_or_insert(anyhow::anyhow!("an interval run panicked: {error}"));
+        }
+    };
     for run in runs(buckets, rules) {
         let Some(spec) = state.config.quantity(&run[0].quantity).cloned() else {
             // A quantity removed from the configuration after its readings were stored: the claim
@@ -87,10 +101,27 @@ pub async fn run_once(
             tracing::warn!(quantity = %run[0].quantity, area = %run[0].area_key, intervals = run.len(), "pending intervals of an unconfigured quantity; skipped");
             continue;
         };
-        outcome.computed += compute_run(state, run, spec).await?;
+        if in_flight.len() >= RUNS_AT_ONCE {
+            if let Some(joined) = in_flight.join_next().await {
+                settle(joined);
+            }
+        }
+        let state = state.clone();
+        in_flight.spawn(async move { compute_run(&state, run, spec).await });
     }
-    Ok(outcome)
+    while let Some(joined) = in_flight.join_next().await {
+        settle(joined);
+    }
+    match failure {
+        Some(error) => Err(error),
+        None => Ok(outcome),
+    }
 }
+
+/// Runs of intervals in hand at once in one step: two, so that on a machine of two cores or more
+/// one run's read (SQLite's direct reader, or PostgreSQL) and decision (the blocking pool) overlap
+/// the other's store. More would only queue behind SQLite's one writer.
+const RUNS_AT_ONCE: usize = 2;
 
 /// Decided intervals stored per transaction: one commit (one flush to disk) for many, while the
 /// write lock is held briefly enough that ingest batches on SQLite wait only a little for it.
