@@ -396,6 +396,12 @@ impl Store for PostgresStore {
         Ok(claimed)
     }
 
+    /// The readings come as one row per station holding its readings in arrays, decoded from
+    /// PostgreSQL's binary array format: a few dozen rows per run of intervals instead of hundreds
+    /// of thousands, each of which costs the driver far more than an array element. The arrays are
+    /// filled from a subquery ordered by (station, time, revision); PostgreSQL keeps that order in
+    /// practice but does not promise it, so each station's readings are checked and, if need be,
+    /// sorted here before the rows are assembled as every other read assembles them.
     async fn load_interval(
         &self,
         area_id: i64,
@@ -403,7 +409,72 @@ impl Store for PostgresStore {
         from_ms: i64,
         to_ms: i64,
     ) -> Result<crate::IntervalData, StoreError> {
-        results_shared::load_interval(&self.pool, area_id, quantity, from_ms, to_ms).await
+        type StationArrays = (
+            i64,
+            Vec<i64>,
+            Vec<i64>,
+            Vec<i64>,
+            Vec<Option<f64>>,
+            Vec<Option<f64>>,
+        );
+        let mut connection = self.pool.acquire().await?;
+        let stations: Vec<(i64, String)> = sqlx::query_as(crate::results::LOAD_STATIONS_SQL)
+            .bind(area_id)
+            .fetch_all(&mut *connection)
+            .await?;
+        let arrays: Vec<StationArrays> = sqlx::query_as(
+            "SELECT station_id, array_agg(id), array_agg(observed_at_ms), array_agg(revision), \
+             array_agg(value), array_agg(value_as_sent) \
+             FROM (SELECT r.station_id, r.id, r.observed_at_ms, r.revision, r.value, \
+             r.value_as_sent FROM stations s JOIN readings r ON r.station_id = s.id \
+             WHERE s.area_id = $1 \
+             AND r.quantity_id = (SELECT id FROM quantities WHERE key = $2) \
+             AND r.observed_at_ms >= $3 AND r.observed_at_ms < $4 \
+             ORDER BY r.station_id, r.observed_at_ms, r.revision) AS ordered \
+             GROUP BY station_id ORDER BY station_id",
+        )
+        .bind(area_id)
+        .bind(quantity)
+        .bind(from_ms)
+        .bind(to_ms)
+        .fetch_all(&mut *connection)
+        .await?;
+        let mut rows: Vec<(i64, i64, crate::results::ReadingRow)> = Vec::new();
+        for (station_id, ids, times, revisions, values, as_sent) in arrays {
+            let count = ids.len();
+            if [times.len(), revisions.len(), values.len(), as_sent.len()] != [count; 4] {
+                return Err(StoreError::Other(format!(
+                    "station {station_id}: reading arrays of different lengths"
+                )));
+            }
+            let first = rows.len();
+            rows.extend((0..count).map(|i| {
+                (
+                    times[i],
+                    revisions[i],
+                    (station_id, ids[i], times[i], values[i], as_sent[i]),
+                )
+            }));
+            let station_rows = &mut rows[first..];
+            if !station_rows.is_sorted_by_key(|&(time, revision, _)| (time, revision)) {
+                station_rows.sort_unstable_by_key(|&(time, revision, _)| (time, revision));
+            }
+        }
+        let stations = crate::results::assemble_series(
+            stations,
+            rows.into_iter().map(|(_, _, row)| Ok::<_, StoreError>(row)),
+        )?;
+        let reviews: Vec<(i64, String)> = sqlx::query_as(crate::results::LOAD_REVIEWS_SQL)
+            .bind(area_id)
+            .bind(quantity)
+            .bind(from_ms)
+            .bind(to_ms)
+            .fetch_all(&mut *connection)
+            .await?;
+        Ok(crate::IntervalData {
+            stations,
+            overturned: crate::results::overturned_of(reviews)?,
+        })
     }
 
     crate::results_sql::result_store_methods!();

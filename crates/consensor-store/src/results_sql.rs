@@ -1,8 +1,9 @@
-//! The consensus side's queries whose SQL text is the same on both backends: loading an interval's
-//! readings, storing a result with its set-aside records, the result and set-aside reads of the API,
+//! The consensus side's queries whose SQL text is the same on both backends: storing results with
+//! their set-aside records, the result and set-aside reads of the API,
 //! reviews, recompute requests and the station health figures. Like `sql.rs`, a macro stamps them
-//! out once per backend. What differs between the backends — how buckets are claimed, and how a
-//! writing transaction starts — lives in `sqlite.rs` and `postgres.rs`.
+//! out once per backend. What differs between the backends — how buckets are claimed, how a
+//! writing transaction starts, and how the worker reads an area's readings — lives in `sqlite.rs`
+//! (and `sqlite_read.rs`) and `postgres.rs`.
 
 /// Rows per multi-row INSERT of set-aside records or station values. 1 000 rows of at most 13
 /// columns stay well below SQLite's 32 766 bound parameters and PostgreSQL's 65 535.
@@ -18,57 +19,13 @@ macro_rules! result_queries {
             use crate::batch::AttemptError;
             use crate::results_sql::ROWS_PER_INSERT;
             use crate::{
-                AuditFilter, ClaimedBucket, IntervalData, Page, ReadingCounts, ResultRow,
+                AuditFilter, ClaimedBucket, Page, ReadingCounts, ResultRow,
                 ReviewDecision, ReviewRecord, ReviewState, ReviewSummary, SetAsideCursor,
                 SetAsideFilter, SetAsideRow, StationResidual, StoreError,
                 StoredResult,
             };
 
             type DatabaseRow = <$database as sqlx::Database>::Row;
-
-            /// Every current reading of one area's stations and one quantity in
-            /// `[from_ms, to_ms)`, with the ids of those whose latest review is an overturn. The
-            /// area's stations drive the loop (`CROSS JOIN` keeps that order on SQLite) and each
-            /// station's readings are one range of the station-first index (migration 0003), read
-            /// in (time, revision) order; of several revisions of one reading the last one read is
-            /// kept, so "current" costs no probe per row. Reviews are few: one more query finds the
-            /// overturned ones among the range's readings.
-            pub(crate) async fn load_interval(
-                pool: &Pool<$database>,
-                area_id: i64,
-                quantity: &str,
-                from_ms: i64,
-                to_ms: i64,
-            ) -> Result<IntervalData, StoreError> {
-                let stations: Vec<(i64, String)> =
-                    sqlx::query_as(crate::results::LOAD_STATIONS_SQL)
-                        .bind(area_id)
-                        .fetch_all(pool)
-                        .await?;
-                let rows: Vec<crate::results::ReadingRow> =
-                    sqlx::query_as(crate::results::LOAD_READINGS_SQL)
-                .bind(area_id)
-                .bind(quantity)
-                .bind(from_ms)
-                .bind(to_ms)
-                .fetch_all(pool)
-                .await?;
-                let series = crate::results::assemble_series(
-                    stations,
-                    rows.into_iter().map(Ok::<_, StoreError>),
-                )?;
-                let reviews: Vec<(i64, String)> = sqlx::query_as(crate::results::LOAD_REVIEWS_SQL)
-                .bind(area_id)
-                .bind(quantity)
-                .bind(from_ms)
-                .bind(to_ms)
-                .fetch_all(pool)
-                .await?;
-                Ok(IntervalData {
-                    stations: series,
-                    overturned: crate::results::overturned_of(reviews)?,
-                })
-            }
 
             /// See `Store::claim_interval_of_reading`. The claim is one UPDATE of the pending row
             /// with the claimability test in its WHERE clause, so of two concurrent claimers (a

@@ -461,9 +461,7 @@ impl Store for SqliteStore {
                     .load_interval(area_id, quantity, from_ms, to_ms)
                     .await
             }
-            None => {
-                results_shared::load_interval(&self.pool, area_id, quantity, from_ms, to_ms).await
-            }
+            None => load_interval_through_pool(&self.pool, area_id, quantity, from_ms, to_ms).await,
         }
     }
 
@@ -472,6 +470,45 @@ impl Store for SqliteStore {
     async fn close(&self) {
         self.pool.close().await;
     }
+}
+
+/// `Store::load_interval` through the sqlx pool: for an in-memory database, which the direct
+/// reader cannot open a second time. The area's stations drive the loop (`CROSS JOIN` keeps that order on SQLite) and each
+/// station's readings are one range of the station-first index (migration 0003), read
+/// in (time, revision) order; of several revisions of one reading the last one read is
+/// kept, so "current" costs no probe per row. Reviews are few: one more query finds the
+/// overturned ones among the range's readings.
+async fn load_interval_through_pool(
+    pool: &SqlitePool,
+    area_id: i64,
+    quantity: &str,
+    from_ms: i64,
+    to_ms: i64,
+) -> Result<crate::IntervalData, StoreError> {
+    let stations: Vec<(i64, String)> = sqlx::query_as(crate::results::LOAD_STATIONS_SQL)
+        .bind(area_id)
+        .fetch_all(pool)
+        .await?;
+    let rows: Vec<crate::results::ReadingRow> = sqlx::query_as(crate::results::LOAD_READINGS_SQL)
+        .bind(area_id)
+        .bind(quantity)
+        .bind(from_ms)
+        .bind(to_ms)
+        .fetch_all(pool)
+        .await?;
+    let series =
+        crate::results::assemble_series(stations, rows.into_iter().map(Ok::<_, StoreError>))?;
+    let reviews: Vec<(i64, String)> = sqlx::query_as(crate::results::LOAD_REVIEWS_SQL)
+        .bind(area_id)
+        .bind(quantity)
+        .bind(from_ms)
+        .bind(to_ms)
+        .fetch_all(pool)
+        .await?;
+    Ok(crate::IntervalData {
+        stations: series,
+        overturned: crate::results::overturned_of(reviews)?,
+    })
 }
 
 #[cfg(test)]
@@ -576,7 +613,7 @@ mod tests {
                 .await
                 .expect("direct read");
             let pooled =
-                results_shared::load_interval(&store.pool, area_id, "air_temperature", from, to)
+                load_interval_through_pool(&store.pool, area_id, "air_temperature", from, to)
                     .await
                     .expect("pool read");
             assert_eq!(direct, pooled);
