@@ -88,20 +88,13 @@ async fn post_batch(
 }
 
 fn batch(stations: &[String], first_minute: i64, minutes: i64, index: i64) -> Value {
-    let mut readings = Vec::new();
-    for minute in 0..minutes {
-        let observed =
-            consensor_server::http::rfc3339((first_minute + index * minutes + minute) * MINUTE_MS);
-        for (s, station) in stations.iter().enumerate() {
-            readings.push(json!({
-                "station": station,
-                "quantity": QUANTITY,
-                "value": 11.0 + s as f64 * 0.1 + (minute % 5) as f64 * 0.05,
-                "observed_at": observed,
-            }));
-        }
-    }
-    json!({ "readings": readings })
+    common::minutely_batch_json(
+        stations,
+        QUANTITY,
+        first_minute + index * minutes,
+        minutes,
+        |s, minute| 11.0 + s as f64 * 0.1 + (minute % 5) as f64 * 0.05,
+    )
 }
 
 /// How many readings of batch `index` are stored (every station's, in the batch's minutes).
@@ -113,16 +106,14 @@ async fn stored_of_batch(
     index: i64,
 ) -> usize {
     let from_ms = (first_minute + index * minutes) * MINUTE_MS;
-    let to_ms = from_ms + minutes * MINUTE_MS;
-    let mut stored = 0;
-    for station in stations {
-        stored += store
-            .readings_history(station, QUANTITY, from_ms, to_ms)
-            .await
-            .expect("read back")
-            .len();
-    }
-    stored
+    common::stored_between(
+        store,
+        stations,
+        QUANTITY,
+        from_ms,
+        from_ms + minutes * MINUTE_MS,
+    )
+    .await
 }
 
 /// A refusal because the database cannot be used must be a 503 with a whole number of seconds in

@@ -56,32 +56,15 @@ fn first_minute(start_minute: i64, client: i64, batch: i64) -> i64 {
 }
 
 fn batch_body(stations: &[String], first: i64) -> Value {
-    let mut readings = Vec::new();
-    for minute in 0..MINUTES_PER_BATCH {
-        let observed = consensor_server::http::rfc3339((first + minute) * MINUTE_MS);
-        for (s, station) in stations.iter().enumerate() {
-            readings.push(json!({
-                "station": station, "quantity": QUANTITY,
-                "value": 12.0 + s as f64 * 0.1 + (minute % 3) as f64 * 0.05,
-                "observed_at": observed,
-            }));
-        }
-    }
-    json!({ "readings": readings })
+    common::minutely_batch_json(stations, QUANTITY, first, MINUTES_PER_BATCH, |s, minute| {
+        12.0 + s as f64 * 0.1 + (minute % 3) as f64 * 0.05
+    })
 }
 
 /// How many readings of the batch starting at minute `first` are stored.
 async fn stored_of_batch(store: &impl Store, stations: &[String], first: i64) -> usize {
     let (from_ms, to_ms) = (first * MINUTE_MS, (first + MINUTES_PER_BATCH) * MINUTE_MS);
-    let mut stored = 0;
-    for station in stations {
-        stored += store
-            .readings_history(station, QUANTITY, from_ms, to_ms)
-            .await
-            .expect("read back")
-            .len();
-    }
-    stored
+    common::stored_between(store, stations, QUANTITY, from_ms, to_ms).await
 }
 
 /// Whether a request error is a refused connection (nothing listens on the port).

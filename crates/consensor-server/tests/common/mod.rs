@@ -394,6 +394,50 @@ pub fn minutely_readings(
         .collect()
 }
 
+/// A JSON ingest body with one reading a minute from every station for `minutes` minutes from
+/// minute `first_minute` (minutes since the epoch), station `s` at minute `m` of the batch reading
+/// `value(s, m)`.
+pub fn minutely_batch_json(
+    stations: &[String],
+    quantity: &str,
+    first_minute: i64,
+    minutes: i64,
+    value: impl Fn(usize, i64) -> f64,
+) -> Value {
+    let mut readings = Vec::new();
+    for minute in 0..minutes {
+        let observed = consensor_server::http::rfc3339((first_minute + minute) * 60_000);
+        for (s, station) in stations.iter().enumerate() {
+            readings.push(json!({
+                "station": station,
+                "quantity": quantity,
+                "value": value(s, minute),
+                "observed_at": observed,
+            }));
+        }
+    }
+    json!({ "readings": readings })
+}
+
+/// How many current readings of `quantity` the stations have in `[from_ms, to_ms)`.
+pub async fn stored_between(
+    store: &impl consensor_store::Store,
+    stations: &[String],
+    quantity: &str,
+    from_ms: i64,
+    to_ms: i64,
+) -> usize {
+    let mut stored = 0;
+    for station in stations {
+        stored += store
+            .readings_history(station, quantity, from_ms, to_ms)
+            .await
+            .expect("read back")
+            .len();
+    }
+    stored
+}
+
 /// An answer to [`send_as_admin`]: status, `Retry-After` if any, and the JSON body (`Null` when
 /// the body is not JSON).
 #[derive(Debug, Clone)]
