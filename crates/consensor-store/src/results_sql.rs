@@ -264,19 +264,12 @@ macro_rules! result_queries {
                 // result just stored is already out of date, and releasing the claim lets the
                 // next claim compute it again from the newer readings.
                 let mut delete = QueryBuilder::<$database>::new("DELETE FROM pending_buckets WHERE ");
-                let mut terms = delete.separated(" OR ");
-                for result in results {
-                    let bucket = result.bucket;
-                    terms
-                        .push("(area_id = ")
-                        .push_bind_unseparated(bucket.area_id)
-                        .push_unseparated(" AND quantity_id = ")
-                        .push_bind_unseparated(bucket.quantity_id)
-                        .push_unseparated(" AND bucket_start_ms = ")
-                        .push_bind_unseparated(bucket.bucket_start_ms)
-                        .push_unseparated(" AND mark_count = ")
-                        .push_bind_unseparated(bucket.mark_count)
-                        .push_unseparated(")");
+                for (index, result) in results.iter().enumerate() {
+                    push_bucket_match(&mut delete, index, result.bucket);
+                    delete
+                        .push(" AND mark_count = ")
+                        .push_bind(result.bucket.mark_count)
+                        .push(")");
                 }
                 delete.push(" RETURNING area_id, quantity_id, bucket_start_ms");
                 let removed: std::collections::HashSet<(i64, i64, i64)> = delete
@@ -294,18 +287,12 @@ macro_rules! result_queries {
                     let mut release = QueryBuilder::<$database>::new(
                         "UPDATE pending_buckets SET claimed_by = NULL, claimed_at_ms = NULL WHERE ",
                     );
-                    let mut terms = release.separated(" OR ");
-                    for bucket in &marked_again {
-                        terms
-                            .push("(area_id = ")
-                            .push_bind_unseparated(bucket.area_id)
-                            .push_unseparated(" AND quantity_id = ")
-                            .push_bind_unseparated(bucket.quantity_id)
-                            .push_unseparated(" AND bucket_start_ms = ")
-                            .push_bind_unseparated(bucket.bucket_start_ms)
-                            .push_unseparated(" AND claimed_by = ")
-                            .push_bind_unseparated(bucket.claimed_by.as_str())
-                            .push_unseparated(")");
+                    for (index, bucket) in marked_again.iter().enumerate() {
+                        push_bucket_match(&mut release, index, bucket);
+                        release
+                            .push(" AND claimed_by = ")
+                            .push_bind(bucket.claimed_by.clone())
+                            .push(")");
                     }
                     release.build().execute(&mut *connection).await?;
                 }
@@ -322,6 +309,25 @@ macro_rules! result_queries {
                         )),
                     })
                     .collect())
+            }
+
+            /// Appends `[OR ](area_id = … AND quantity_id = … AND bucket_start_ms = …` for the
+            /// `index`-th bucket of a WHERE clause; the caller adds its last condition and `)`.
+            fn push_bucket_match(
+                builder: &mut QueryBuilder<'_, $database>,
+                index: usize,
+                bucket: &ClaimedBucket,
+            ) {
+                if index > 0 {
+                    builder.push(" OR ");
+                }
+                builder
+                    .push("(area_id = ")
+                    .push_bind(bucket.area_id)
+                    .push(" AND quantity_id = ")
+                    .push_bind(bucket.quantity_id)
+                    .push(" AND bucket_start_ms = ")
+                    .push_bind(bucket.bucket_start_ms);
             }
 
             /// Refuses, before anything is written, an outcome that does not fit the arguments
