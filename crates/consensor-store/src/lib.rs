@@ -58,6 +58,7 @@ mod sqlite;
 mod sqlite_read;
 #[cfg(feature = "testing")]
 pub mod testing;
+mod write_gate;
 
 use std::collections::HashMap;
 use std::future::Future;

@@ -60,6 +60,11 @@ impl PostgresStore {
         &self.pool
     }
 
+    /// PostgreSQL orders its writers itself: no gate (see `write_gate.rs` for SQLite's).
+    async fn write_pass(&self, _rows: usize) -> Option<crate::write_gate::GatePass> {
+        None
+    }
+
     /// The transaction every writing method starts with (the shared result methods call it by this
     /// name on both backends). PostgreSQL's default READ COMMITTED suffices: the writes rely on row
     /// locks and unique keys, not on snapshots.

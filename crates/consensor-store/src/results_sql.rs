@@ -1040,6 +1040,11 @@ macro_rules! result_store_methods {
             if results.is_empty() {
                 return Ok(Vec::new());
             }
+            let rows: usize = results
+                .iter()
+                .map(|r| 1 + r.outcome.set_aside.len() + r.outcome.station_values.len())
+                .sum();
+            let _pass = self.write_pass(rows).await;
             crate::batch::with_retries(|| async {
                 let mut tx = self.begin_write().await?;
                 let stored = results_shared::store_results(&mut tx, results, now_ms).await?;

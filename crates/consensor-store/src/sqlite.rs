@@ -37,6 +37,8 @@ pub struct SqliteStore {
     pool: SqlitePool,
     /// The worker's bulk read (`None` for an in-memory database).
     direct: Option<std::sync::Arc<crate::sqlite_read::DirectReader>>,
+    /// The order of this process's big writers (`write_gate.rs`).
+    gate: std::sync::Arc<crate::write_gate::WriteGate>,
 }
 
 impl SqliteStore {
@@ -71,7 +73,11 @@ impl SqliteStore {
             .connect_with(connect_options)
             .await?;
         MIGRATOR.run(&pool).await?;
-        Ok(SqliteStore { pool, direct })
+        Ok(SqliteStore {
+            pool,
+            direct,
+            gate: Default::default(),
+        })
     }
 
     /// The underlying pool, for tests and the benchmark harness that need raw SQL (checking a
@@ -82,6 +88,12 @@ impl SqliteStore {
 
     async fn begin_immediate(&self) -> Result<Transaction<'static, Sqlite>, sqlx::Error> {
         self.pool.begin_with("BEGIN IMMEDIATE").await
+    }
+
+    /// Waits for a write of `rows` rows to take its turn at the write lock (`write_gate.rs`); the
+    /// shared result methods call it by this name on both backends.
+    async fn write_pass(&self, rows: usize) -> Option<crate::write_gate::GatePass> {
+        Some(self.gate.enter(rows).await)
     }
 
     /// The transaction every writing method starts with (the shared result methods call it by this
@@ -396,6 +408,7 @@ impl Store for SqliteStore {
         if readings.is_empty() {
             return Ok(BatchOutcome::default());
         }
+        let _pass = self.write_pass(readings.len()).await;
         with_retries(|| self.try_insert_batch(readings, now_ms)).await
     }
 
@@ -441,6 +454,7 @@ impl Store for SqliteStore {
         if limit == 0 {
             return Ok(Vec::new());
         }
+        let _pass = self.write_pass(0).await;
         Ok(self
             .try_claim_buckets(worker, now_ms, limit, stale_after_ms, open_refresh_ms)
             .await?)
