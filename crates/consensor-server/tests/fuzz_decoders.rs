@@ -18,11 +18,13 @@
 //! every crash found is also kept below as an explicit test case.
 
 mod common;
+mod mutation;
 
 use common::{TestServer, ADMIN};
 use consensor_server::ingest::{
     decode, decode_batch, BodyFormat, DecodeError, DecodeLimits, DecodedReading,
 };
+use mutation::Mutation;
 use proptest::prelude::*;
 use proptest::test_runner::{Config as ProptestConfig, FileFailurePersistence, TestRunner};
 use serde_json::{json, Value};
@@ -365,95 +367,13 @@ const HOSTILE_TOKENS: &[&str] = &[
     "\"observed_at\":\"0000-01-01T00:00:00+23:59\"",
 ];
 
-#[derive(Debug, Clone)]
-enum Mutation {
-    FlipByte {
-        at: usize,
-        mask: u8,
-    },
-    Insert {
-        at: usize,
-        byte: u8,
-    },
-    Delete {
-        at: usize,
-        len: usize,
-    },
-    Duplicate {
-        at: usize,
-        len: usize,
-    },
-    Truncate {
-        at: usize,
-    },
-    Splice {
-        at: usize,
-        token: usize,
-    },
-    Repeat {
-        at: usize,
-        token: usize,
-        times: usize,
-    },
-}
-
+/// JSON's significant bytes are drawn more often than others: they change structure.
 fn mutation() -> impl Strategy<Value = Mutation> {
-    // JSON's significant bytes are drawn more often than others: they change structure.
-    let byte = prop_oneof![
-        prop::sample::select(b"{}[]\":,\\ 0123456789eE+-.ntfu\n\r\t".to_vec()),
-        any::<u8>(),
-    ];
-    let at = any::<usize>();
-    prop_oneof![
-        (at, 1..=255u8).prop_map(|(at, mask)| Mutation::FlipByte { at, mask }),
-        (at, byte).prop_map(|(at, byte)| Mutation::Insert { at, byte }),
-        (at, 1..16usize).prop_map(|(at, len)| Mutation::Delete { at, len }),
-        (at, 1..64usize).prop_map(|(at, len)| Mutation::Duplicate { at, len }),
-        at.prop_map(|at| Mutation::Truncate { at }),
-        (at, 0..HOSTILE_TOKENS.len()).prop_map(|(at, token)| Mutation::Splice { at, token }),
-        (at, 0..HOSTILE_TOKENS.len(), 2..200usize)
-            .prop_map(|(at, token, times)| { Mutation::Repeat { at, token, times } }),
-    ]
-}
-
-fn apply(body: &mut Vec<u8>, mutation: &Mutation) {
-    let position = |at: usize, len: usize| if len == 0 { 0 } else { at % (len + 1) };
-    match *mutation {
-        Mutation::FlipByte { at, mask } => {
-            if !body.is_empty() {
-                let index = at % body.len();
-                body[index] ^= mask;
-            }
-        }
-        Mutation::Insert { at, byte } => {
-            let index = position(at, body.len());
-            body.insert(index, byte);
-        }
-        Mutation::Delete { at, len } => {
-            let start = position(at, body.len());
-            let end = (start + len).min(body.len());
-            body.drain(start..end);
-        }
-        Mutation::Duplicate { at, len } => {
-            let start = position(at, body.len());
-            let end = (start + len).min(body.len());
-            let copy = body[start..end].to_vec();
-            body.splice(end..end, copy);
-        }
-        Mutation::Truncate { at } => {
-            let index = position(at, body.len());
-            body.truncate(index);
-        }
-        Mutation::Splice { at, token } => {
-            let index = position(at, body.len());
-            body.splice(index..index, HOSTILE_TOKENS[token].bytes());
-        }
-        Mutation::Repeat { at, token, times } => {
-            let index = position(at, body.len());
-            let run = HOSTILE_TOKENS[token].repeat(times);
-            body.splice(index..index, run.bytes());
-        }
-    }
+    mutation::mutation(
+        b"{}[]\":,\\ 0123456789eE+-.ntfu\n\r\t",
+        HOSTILE_TOKENS.len(),
+        16,
+    )
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -617,7 +537,7 @@ proptest! {
     ) {
         let mut body = body;
         for mutation in &mutations {
-            apply(&mut body, mutation);
+            mutation::apply(&mut body, mutation, HOSTILE_TOKENS);
         }
         check_clean_outcome(format, &body)?;
         // A body in one format sent as another is hostile input too.

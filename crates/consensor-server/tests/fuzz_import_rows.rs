@@ -17,6 +17,8 @@
 //! found by proptest is saved by proptest itself in `fuzz_import_rows.proptest-regressions`
 //! beside this file (commit it), as for `fuzz_decoders.rs`.
 
+mod mutation;
+
 use std::collections::BTreeSet;
 
 use consensor_server::config::Config;
@@ -24,6 +26,7 @@ use consensor_server::import::{self, ImportOptions};
 use consensor_server::ingest::{
     decode_text_reading, DecodeError, DecodeLimits, DecodedReading, TextReading,
 };
+use mutation::Mutation;
 use proptest::prelude::*;
 use proptest::test_runner::{Config as ProptestConfig, FileFailurePersistence, TestRunner};
 
@@ -350,62 +353,34 @@ const HOSTILE_TOKENS: &[&str] = &[
     "2026-06-01t07:00:00z",
 ];
 
+/// A field's mutation: the shared byte mutations (CSV's quoting, separators and line ends and the
+/// fields' number and time characters drawn more often), or the whole field replaced by a hostile
+/// token, repeated, or emptied.
 #[derive(Debug, Clone)]
-enum Mutation {
-    FlipByte { at: usize, mask: u8 },
-    Insert { at: usize, byte: u8 },
-    Delete { at: usize, len: usize },
-    Truncate { at: usize },
-    Splice { at: usize, token: usize },
+enum FieldMutation {
+    Bytes(Mutation),
     Replace { token: usize },
     Repeat { times: usize },
     Empty,
 }
 
-fn mutation() -> impl Strategy<Value = Mutation> {
-    let byte = prop_oneof![
-        prop::sample::select(b"0123456789eE+-.:TZtz ,\"\r\n_[]/%".to_vec()),
-        any::<u8>(),
-    ];
-    let at = any::<usize>();
+fn mutation() -> impl Strategy<Value = FieldMutation> {
     prop_oneof![
-        (at, 1..=255u8).prop_map(|(at, mask)| Mutation::FlipByte { at, mask }),
-        (at, byte).prop_map(|(at, byte)| Mutation::Insert { at, byte }),
-        (at, 1..8usize).prop_map(|(at, len)| Mutation::Delete { at, len }),
-        at.prop_map(|at| Mutation::Truncate { at }),
-        (at, 0..HOSTILE_TOKENS.len()).prop_map(|(at, token)| Mutation::Splice { at, token }),
-        (0..HOSTILE_TOKENS.len()).prop_map(|token| Mutation::Replace { token }),
-        (2..100usize).prop_map(|times| Mutation::Repeat { times }),
-        Just(Mutation::Empty),
+        4 => mutation::mutation(b"0123456789eE+-.:TZtz ,\"\r\n_[]/%", HOSTILE_TOKENS.len(), 8)
+            .prop_map(FieldMutation::Bytes),
+        1 => (0..HOSTILE_TOKENS.len()).prop_map(|token| FieldMutation::Replace { token }),
+        1 => (2..100usize).prop_map(|times| FieldMutation::Repeat { times }),
+        1 => Just(FieldMutation::Empty),
     ]
 }
 
-/// Applies `mutation` to the bytes of `text`; the result is made UTF-8 again as the CSV reader
-/// would refuse anything else (`csv::StringRecord`).
-fn apply(text: &str, mutation: &Mutation) -> String {
+fn apply(text: &str, mutation: &FieldMutation) -> String {
     let mut bytes = text.as_bytes().to_vec();
-    let position = |at: usize, len: usize| if len == 0 { 0 } else { at % (len + 1) };
-    match *mutation {
-        Mutation::FlipByte { at, mask } => {
-            if !bytes.is_empty() {
-                let i = at % bytes.len();
-                bytes[i] ^= mask;
-            }
-        }
-        Mutation::Insert { at, byte } => bytes.insert(position(at, bytes.len()), byte),
-        Mutation::Delete { at, len } => {
-            let start = position(at, bytes.len());
-            let end = (start + len).min(bytes.len());
-            bytes.drain(start..end);
-        }
-        Mutation::Truncate { at } => bytes.truncate(position(at, bytes.len())),
-        Mutation::Splice { at, token } => {
-            let i = position(at, bytes.len());
-            bytes.splice(i..i, HOSTILE_TOKENS[token].bytes());
-        }
-        Mutation::Replace { token } => bytes = HOSTILE_TOKENS[token].as_bytes().to_vec(),
-        Mutation::Repeat { times } => bytes = bytes.repeat(times),
-        Mutation::Empty => bytes.clear(),
+    match mutation {
+        FieldMutation::Bytes(mutation) => mutation::apply(&mut bytes, mutation, HOSTILE_TOKENS),
+        FieldMutation::Replace { token } => bytes = HOSTILE_TOKENS[*token].as_bytes().to_vec(),
+        FieldMutation::Repeat { times } => bytes = bytes.repeat(*times),
+        FieldMutation::Empty => bytes.clear(),
     }
     String::from_utf8_lossy(&bytes).into_owned()
 }
