@@ -65,10 +65,12 @@ pub(crate) struct BatchPlan {
 
 /// Classifies every reading of a batch against the current values already stored (`current`, keyed
 /// by [`KeyIds`]) and against the readings before it in the same batch, so that a key repeated
-/// within one batch is treated exactly as if it had arrived in two batches.
+/// within one batch is treated exactly as if it had arrived in two batches. `current` is left
+/// holding what the batch made current, so that batches planned one after the other in one
+/// transaction see each other as if they had been stored one after the other.
 pub(crate) fn plan_batch(
     readings: &[ResolvedReading<'_>],
-    mut current: HashMap<KeyIds, CurrentValue>,
+    current: &mut HashMap<KeyIds, CurrentValue>,
 ) -> BatchPlan {
     let mut plan = BatchPlan::default();
     let mut buckets = BTreeSet::new();
@@ -276,7 +278,7 @@ mod tests {
         let same = reading(Some(13.9), Some("Cel"));
         let changed = reading(Some(14.2), Some("Cel"));
         let batch = [resolved(&first), resolved(&same), resolved(&changed)];
-        let plan = plan_batch(&batch, HashMap::new());
+        let plan = plan_batch(&batch, &mut HashMap::new());
         assert_eq!(
             plan.outcome,
             BatchOutcome {
@@ -328,7 +330,7 @@ mod tests {
                 unit_as_sent: None,
             },
         );
-        let plan = plan_batch(&[resolved(&changed)], current);
+        let plan = plan_batch(&[resolved(&changed)], &mut current);
         assert_eq!(plan.rows[0].revision, 5);
         assert_eq!(plan.outcome.revised, 1);
     }

@@ -2,7 +2,7 @@
 //! translated into it.
 
 /// The one error type that leaves the storage layer.
-#[derive(Debug, thiserror::Error)]
+#[derive(Debug, Clone, thiserror::Error)]
 pub enum StoreError {
     #[error("not found: {0}")]
     NotFound(String),

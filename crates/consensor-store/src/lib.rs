@@ -48,6 +48,7 @@
 
 pub mod backup;
 mod batch;
+mod commit_group;
 mod error;
 mod model;
 mod postgres;

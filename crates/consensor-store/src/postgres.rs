@@ -107,8 +107,8 @@ impl PostgresStore {
         let mut keys: Vec<KeyIds> = resolved.iter().map(ResolvedReading::key).collect();
         keys.sort_unstable();
         keys.dedup();
-        let current = current_values(&mut tx, &keys).await?;
-        let plan = plan_batch(&resolved, current);
+        let mut current = current_values(&mut tx, &keys).await?;
+        let plan = plan_batch(&resolved, &mut current);
 
         if !plan.rows.is_empty() {
             let rows = &plan.rows;

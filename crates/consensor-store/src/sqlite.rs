@@ -3,20 +3,25 @@
 //! Every connection runs in WAL mode with `synchronous=FULL`, so a transaction that has committed is
 //! on disk (the WAL is synced at each commit) and survives both a killed process and a power loss.
 //! Writing transactions start with `BEGIN IMMEDIATE`: they take the write lock before reading, so a
-//! batch never reads current values that another writer changes before it commits.
+//! batch never reads current values that another writer changes before it commits. Small batches
+//! that arrive while another write is in hand are stored together, one commit for all
+//! (`commit_group.rs`).
 
-use std::collections::HashMap;
+use std::collections::{BTreeSet, HashMap};
 use std::str::FromStr;
 
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
 };
 use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
+use tokio::sync::oneshot;
 
 use crate::batch::{
     distinct_sorted, insert_current, missing_keys, plan_batch, with_retries, AttemptError,
     CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
 };
+use crate::commit_group::{BatchAnswer, CommitQueue, WaitingBatch};
+use crate::write_gate::LARGE_WRITE_ROWS;
 use crate::{
     Area, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken, ReadingKey,
     Station, StationRef, Store, StoreError, StoreOptions, StoredReading, Token, Upserted,
@@ -39,6 +44,8 @@ pub struct SqliteStore {
     direct: Option<std::sync::Arc<crate::sqlite_read::DirectReader>>,
     /// The order of this process's big writers (`write_gate.rs`).
     gate: std::sync::Arc<crate::write_gate::WriteGate>,
+    /// Small batches waiting to be stored together (`commit_group.rs`).
+    queue: std::sync::Arc<CommitQueue>,
 }
 
 impl SqliteStore {
@@ -77,6 +84,7 @@ impl SqliteStore {
             pool,
             direct,
             gate: Default::default(),
+            queue: Default::default(),
         })
     }
 
@@ -163,50 +171,148 @@ impl SqliteStore {
         Ok(claimed)
     }
 
-    async fn try_insert_batch(
+    /// Stores a batch of at most [`LARGE_WRITE_ROWS`] readings with the others waiting then
+    /// (`commit_group.rs`).
+    async fn insert_grouped(&self, readings: &[NewReading], now_ms: i64) -> BatchAnswer {
+        let (answer, answered) = oneshot::channel();
+        self.queue.push(WaitingBatch {
+            readings: readings.to_vec(),
+            now_ms,
+            answer,
+        });
+        // The group is stored by a task of its own: a request that its client gives up on is
+        // dropped at its next await, and must not take the batches of the others down with it.
+        let store = self.clone();
+        tokio::spawn(async move { store.commit_waiting().await });
+        answered.await.unwrap_or_else(|_| {
+            Err(StoreError::Other(
+                "the batch's group commit ended without an answer".to_owned(),
+            ))
+        })
+    }
+
+    /// Waits for a turn at the write lock, then stores the batches waiting then, if an earlier
+    /// turn has not already stored them.
+    async fn commit_waiting(&self) {
+        let _pass = self.write_pass(0).await;
+        let group = self.queue.take_group();
+        if group.is_empty() {
+            return;
+        }
+        let batches: Vec<(&[NewReading], i64)> = group
+            .iter()
+            .map(|waiting| (waiting.readings.as_slice(), waiting.now_ms))
+            .collect();
+        let answers = self.store_batches(&batches).await;
+        for (waiting, answer) in group.into_iter().zip(answers) {
+            // A requester that has gone away needs no answer; its batch is stored all the same.
+            let _ = waiting.answer.send(answer);
+        }
+    }
+
+    /// Stores `batches` in one transaction, one answer per batch. A statement error that no retry
+    /// cures and that is not the database's state (read-only, full, gone) may be one batch's own
+    /// doing: the batches are then stored one by one, so that it fails only its own batch.
+    async fn store_batches(&self, batches: &[(&[NewReading], i64)]) -> Vec<BatchAnswer> {
+        match with_retries(|| self.try_store_batches(batches)).await {
+            Ok(answers) => answers,
+            Err(StoreError::Other(_)) if batches.len() > 1 => {
+                let mut answers = Vec::with_capacity(batches.len());
+                for batch in batches {
+                    let alone = std::slice::from_ref(batch);
+                    answers.push(match with_retries(|| self.try_store_batches(alone)).await {
+                        Ok(mut answer) => answer.remove(0),
+                        Err(error) => Err(error),
+                    });
+                }
+                answers
+            }
+            Err(error) => vec![Err(error); batches.len()],
+        }
+    }
+
+    /// One attempt at storing `batches` (each with the time it arrived) as if one after the other:
+    /// a batch naming an unknown station is refused whole and writes nothing, the others are
+    /// classified in order against what is stored and what the batches before them stored.
+    async fn try_store_batches(
         &self,
-        readings: &[NewReading],
-        now_ms: i64,
-    ) -> Result<BatchOutcome, AttemptError> {
+        batches: &[(&[NewReading], i64)],
+    ) -> Result<Vec<BatchAnswer>, AttemptError> {
         let mut tx = self.begin_immediate().await?;
 
-        let station_keys = distinct_sorted(readings.iter().map(|reading| &reading.station));
+        let all_readings = || batches.iter().flat_map(|(readings, _)| readings.iter());
+        let station_keys = distinct_sorted(all_readings().map(|reading| &reading.station));
         let stations = lookup_stations(&mut tx, &station_keys).await?;
-        let unknown = missing_keys(&station_keys, &stations);
-        if !unknown.is_empty() {
-            return Err(AttemptError::Refused(StoreError::NotFound(format!(
-                "unknown stations: {}",
-                unknown.join(", ")
-            ))));
+        let mut answers: Vec<BatchAnswer> = Vec::with_capacity(batches.len());
+        for (readings, _) in batches {
+            let unknown = missing_keys(readings.iter().map(|reading| &reading.station), &stations);
+            answers.push(if unknown.is_empty() {
+                Ok(BatchOutcome::default())
+            } else {
+                Err(StoreError::NotFound(format!(
+                    "unknown stations: {}",
+                    unknown.join(", ")
+                )))
+            });
         }
-        let quantity_keys = distinct_sorted(readings.iter().map(|reading| &reading.quantity));
+        let stored = || {
+            batches
+                .iter()
+                .zip(&answers)
+                .filter(|(_, answer)| answer.is_ok())
+                .map(|(batch, _)| batch)
+        };
+        let quantity_keys = distinct_sorted(
+            stored()
+                .flat_map(|(readings, _)| readings.iter())
+                .map(|reading| &reading.quantity),
+        );
         let quantities = ensure_quantities(&mut tx, &quantity_keys).await?;
 
-        let resolved: Vec<ResolvedReading<'_>> = readings
-            .iter()
-            .map(|reading| {
-                let station = stations[&reading.station];
-                ResolvedReading {
-                    reading,
-                    station_id: station.station_id,
-                    area_id: station.area_id,
-                    interval_ms: station.interval_ms,
-                    quantity_id: quantities[&reading.quantity],
-                }
+        let resolved: Vec<(Vec<ResolvedReading<'_>>, i64)> = stored()
+            .map(|(readings, now_ms)| {
+                let resolved = readings
+                    .iter()
+                    .map(|reading| {
+                        let station = stations[&reading.station];
+                        ResolvedReading {
+                            reading,
+                            station_id: station.station_id,
+                            area_id: station.area_id,
+                            interval_ms: station.interval_ms,
+                            quantity_id: quantities[&reading.quantity],
+                        }
+                    })
+                    .collect();
+                (resolved, *now_ms)
             })
             .collect();
-        let mut keys: Vec<KeyIds> = resolved.iter().map(ResolvedReading::key).collect();
+        let mut keys: Vec<KeyIds> = resolved
+            .iter()
+            .flat_map(|(batch, _)| batch.iter().map(ResolvedReading::key))
+            .collect();
         keys.sort_unstable();
         keys.dedup();
-        let current = current_values(&mut tx, &keys).await?;
-        let plan = plan_batch(&resolved, current);
+        let mut current = current_values(&mut tx, &keys).await?;
 
-        for chunk in plan.rows.chunks(SQLITE_MAX_PARAMETERS / 8) {
+        let mut rows = Vec::new();
+        let mut buckets = BTreeSet::new();
+        let mut marked_at_ms = i64::MIN;
+        let stored_answers = answers.iter_mut().filter(|answer| answer.is_ok());
+        for ((batch, now_ms), answer) in resolved.iter().zip(stored_answers) {
+            let plan = plan_batch(batch, &mut current);
+            *answer = Ok(plan.outcome);
+            rows.extend(plan.rows.into_iter().map(|row| (row, *now_ms)));
+            buckets.extend(plan.buckets);
+            marked_at_ms = marked_at_ms.max(*now_ms);
+        }
+
+        for chunk in rows.chunks(SQLITE_MAX_PARAMETERS / 8) {
             let mut insert = QueryBuilder::<Sqlite>::new(
                 "INSERT INTO readings (observed_at_ms, station_id, quantity_id, revision, value, \
                  value_as_sent, unit_as_sent, received_at_ms) ",
             );
-            insert.push_values(chunk, |mut values, row| {
+            insert.push_values(chunk, |mut values, (row, received_at_ms)| {
                 values
                     .push_bind(row.observed_at_ms)
                     .push_bind(row.station_id)
@@ -215,12 +321,13 @@ impl SqliteStore {
                     .push_bind(row.value)
                     .push_bind(row.value_as_sent)
                     .push_bind(row.unit_as_sent.as_deref())
-                    .push_bind(now_ms);
+                    .push_bind(*received_at_ms);
             });
             insert.build().execute(&mut *tx).await?;
         }
 
-        for chunk in plan.buckets.chunks(SQLITE_MAX_PARAMETERS / 5) {
+        let buckets: Vec<KeyIds> = buckets.into_iter().collect();
+        for chunk in buckets.chunks(SQLITE_MAX_PARAMETERS / 5) {
             let mut upsert = QueryBuilder::<Sqlite>::new(
                 "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, marked_at_ms, \
                  first_marked_at_ms) ",
@@ -232,8 +339,8 @@ impl SqliteStore {
                         .push_bind(area_id)
                         .push_bind(quantity_id)
                         .push_bind(bucket_start_ms)
-                        .push_bind(now_ms)
-                        .push_bind(now_ms);
+                        .push_bind(marked_at_ms)
+                        .push_bind(marked_at_ms);
                 },
             );
             upsert.push(
@@ -245,7 +352,7 @@ impl SqliteStore {
         }
 
         tx.commit().await?;
-        Ok(plan.outcome)
+        Ok(answers)
     }
 }
 
@@ -408,8 +515,12 @@ impl Store for SqliteStore {
         if readings.is_empty() {
             return Ok(BatchOutcome::default());
         }
+        if readings.len() <= LARGE_WRITE_ROWS {
+            return self.insert_grouped(readings, now_ms).await;
+        }
         let _pass = self.write_pass(readings.len()).await;
-        with_retries(|| self.try_insert_batch(readings, now_ms)).await
+        let mut answers = self.store_batches(&[(readings, now_ms)]).await;
+        answers.remove(0)
     }
 
     async fn count_readings(&self) -> Result<u64, StoreError> {
@@ -529,6 +640,84 @@ async fn load_interval_through_pool(
 mod tests {
     use super::*;
     use crate::testing::TestDatabase;
+
+    /// Small batches that arrive while the write lock is held elsewhere are stored as one group
+    /// once it is free, and answered each on its own: the good ones with their outcome, one naming
+    /// an unknown station and one that the database refuses (a trigger) with their own errors, the
+    /// latter after the group has been stored again batch by batch (`store_batches`).
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn small_batches_waiting_for_the_write_lock_are_stored_as_one_group() {
+        let database = TestDatabase::sqlite();
+        let store = SqliteStore::connect(&database.url, &StoreOptions::default())
+            .await
+            .expect("open");
+        store
+            .upsert_area(&NewArea {
+                key: "north".to_owned(),
+                name: "north".to_owned(),
+                interval_ms: 600_000,
+            })
+            .await
+            .expect("area");
+        store
+            .upsert_station(&NewStation {
+                key: "ST-1".to_owned(),
+                area_key: "north".to_owned(),
+                name: "ST-1".to_owned(),
+                lat: None,
+                lon: None,
+                elevation_m: None,
+            })
+            .await
+            .expect("station");
+        sqlx::query(
+            "CREATE TRIGGER inject_failure BEFORE INSERT ON readings WHEN NEW.value = -1.5 \
+             BEGIN SELECT RAISE(ABORT, 'injected failure'); END;",
+        )
+        .execute(&store.pool)
+        .await
+        .expect("trigger");
+        const BASE: i64 = 1_780_000_200_000;
+        let reading = |station: &str, minute: i64, value: f64| NewReading {
+            station: station.to_owned(),
+            quantity: "air_temperature".to_owned(),
+            observed_at_ms: BASE + minute * 60_000,
+            value: Some(value),
+            value_as_sent: Some(value),
+            unit_as_sent: None,
+        };
+        let mut batches: Vec<Vec<NewReading>> = (0..30)
+            .map(|minute| vec![reading("ST-1", minute, 10.0)])
+            .collect();
+        batches.push(vec![reading("ST-404", 0, 10.0)]);
+        batches.push(vec![reading("ST-1", 99, -1.5)]);
+        let count = batches.len();
+
+        let held = store.gate.enter(0).await;
+        let tasks: Vec<_> = batches
+            .into_iter()
+            .map(|batch| {
+                let store = store.clone();
+                tokio::spawn(async move { store.insert_batch(&batch, BASE).await })
+            })
+            .collect();
+        while store.queue.waiting() < count {
+            tokio::time::sleep(std::time::Duration::from_millis(5)).await;
+        }
+        drop(held);
+        let mut answers = Vec::new();
+        for task in tasks {
+            answers.push(task.await.expect("task"));
+        }
+        assert_eq!(store.queue.groups_taken(), 1, "one group for all");
+        for answer in &answers[..30] {
+            assert_eq!(answer.as_ref().expect("stored").accepted, 1);
+        }
+        assert!(matches!(&answers[30], Err(StoreError::NotFound(m)) if m.contains("ST-404")));
+        assert!(matches!(&answers[31], Err(StoreError::Other(m)) if m.contains("injected")));
+        assert_eq!(store.count_readings().await.expect("count"), 30);
+        store.close().await;
+    }
 
     /// The direct read and the pool's read give the same `IntervalData`: current revisions only,
     /// stations in key order, a reading whose latest review is an overturn (and not one whose

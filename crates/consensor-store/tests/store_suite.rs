@@ -107,6 +107,7 @@ on_both_backends!(
     failure_midway_through_a_batch_stores_nothing,
     pending_buckets_are_marked_with_interval_starts,
     concurrent_identical_batches_store_each_reading_once,
+    concurrent_small_batches_are_answered_each_on_its_own,
     tokens_insert_find_and_revoke,
     claim_then_store_result_removes_the_bucket,
     bucket_marked_again_during_computation_stays_pending,
@@ -593,9 +594,9 @@ async fn unknown_station_refuses_the_whole_batch(store: &AnyStore, _database: &T
 /// The value the injected trigger rejects; no other reading of the test carries it.
 const POISON: f64 = -12_345.0;
 
-async fn failure_midway_through_a_batch_stores_nothing(store: &AnyStore, _database: &TestDatabase) {
-    network(store).await;
-    // A trigger makes the database itself fail on one row, as a constraint or I/O failure would.
+/// Makes the database itself fail on any reading of value [`POISON`], as a constraint or I/O
+/// failure would.
+async fn inject_failure_trigger(store: &AnyStore) {
     execute_raw(
         store,
         "CREATE TRIGGER inject_failure BEFORE INSERT ON readings WHEN NEW.value = -12345.0 \
@@ -607,6 +608,11 @@ async fn failure_midway_through_a_batch_stores_nothing(store: &AnyStore, _databa
          FOR EACH ROW EXECUTE FUNCTION inject_failure();",
     )
     .await;
+}
+
+async fn failure_midway_through_a_batch_stores_nothing(store: &AnyStore, _database: &TestDatabase) {
+    network(store).await;
+    inject_failure_trigger(store).await;
     // 5 000 readings need two INSERT chunks on SQLite (at most 4 095 rows of 8 parameters each fit
     // below its 32 766-parameter limit), so the first chunk is written before the poisoned last
     // reading fails; a new quantity is also added to the quantity table on the way.
@@ -633,6 +639,119 @@ async fn failure_midway_through_a_batch_stores_nothing(store: &AnyStore, _databa
     let outcome = store.insert_batch(&batch, NOW_MS).await.expect("clean");
     assert_eq!(outcome.accepted, 5_000);
     assert_eq!(store.count_readings().await.expect("count"), 5_000);
+}
+
+/// Many small batches at once (on SQLite they are stored in groups, `commit_group.rs`): each is
+/// answered as if it had been stored alone. A batch naming an unknown station and one that the
+/// database itself refuses fail on their own; two batches sending the same key count one
+/// acceptance and one duplicate, two sending different values for one key one acceptance and one
+/// revision, whichever goes first.
+async fn concurrent_small_batches_are_answered_each_on_its_own(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network(store).await;
+    inject_failure_trigger(store).await;
+    let mut batches: Vec<Vec<NewReading>> = (0..40)
+        .map(|minute| {
+            let station = if minute % 2 == 0 { "ST-1" } else { "ST-2" };
+            vec![reading(
+                station,
+                "air_temperature",
+                BASE_MS + minute * 60_000,
+                10.0 + minute as f64,
+            )]
+        })
+        .collect();
+    let unknown = batches.len();
+    batches.push(vec![reading("ST-404", "air_temperature", BASE_MS, 13.0)]);
+    let poisoned = batches.len();
+    batches.push(vec![reading("ST-2", "pm10", BASE_MS, POISON)]);
+    let same = reading("ST-1", "relative_humidity", BASE_MS, 80.0);
+    let shared = batches.len();
+    batches.push(vec![same.clone()]);
+    batches.push(vec![same]);
+    let revised = batches.len();
+    batches.push(vec![reading("ST-2", "relative_humidity", BASE_MS, 70.0)]);
+    batches.push(vec![reading("ST-2", "relative_humidity", BASE_MS, 71.0)]);
+
+    let tasks: Vec<_> = batches
+        .into_iter()
+        .enumerate()
+        .map(|(index, batch)| {
+            let store = store.clone();
+            tokio::spawn(async move { store.insert_batch(&batch, NOW_MS + index as i64).await })
+        })
+        .collect();
+    let mut answers = Vec::new();
+    for task in tasks {
+        answers.push(task.await.expect("task"));
+    }
+
+    let one_new = BatchOutcome {
+        accepted: 1,
+        duplicates: 0,
+        revised: 0,
+    };
+    for answer in &answers[..unknown] {
+        assert_eq!(answer.as_ref().expect("a good batch"), &one_new);
+    }
+    assert!(
+        matches!(&answers[unknown], Err(StoreError::NotFound(message)) if message.contains("ST-404")),
+        "{:?}",
+        answers[unknown]
+    );
+    assert!(
+        matches!(&answers[poisoned], Err(StoreError::Other(message)) if message.contains("injected failure")),
+        "{:?}",
+        answers[poisoned]
+    );
+    let sum = |answers: &[Result<BatchOutcome, StoreError>]| {
+        answers
+            .iter()
+            .fold(BatchOutcome::default(), |mut total, answer| {
+                let outcome = answer.as_ref().expect("stored");
+                total.accepted += outcome.accepted;
+                total.duplicates += outcome.duplicates;
+                total.revised += outcome.revised;
+                total
+            })
+    };
+    assert_eq!(
+        sum(&answers[shared..shared + 2]),
+        BatchOutcome {
+            accepted: 1,
+            duplicates: 1,
+            revised: 0
+        }
+    );
+    assert_eq!(
+        sum(&answers[revised..revised + 2]),
+        BatchOutcome {
+            accepted: 2,
+            duplicates: 0,
+            revised: 1
+        }
+    );
+    // 40 readings, one shared key stored once, one key in two revisions.
+    assert_eq!(store.count_readings().await.expect("count"), 43);
+    // Each reading keeps the arrival time of its own batch.
+    let received = fetch_all_raw!(
+        store,
+        (i64, i64),
+        "SELECT observed_at_ms, received_at_ms FROM readings r \
+         JOIN quantities q ON q.id = r.quantity_id WHERE q.key = 'air_temperature'"
+    );
+    assert_eq!(received.len(), 40);
+    for (observed_at_ms, received_at_ms) in received {
+        assert_eq!(received_at_ms, NOW_MS + (observed_at_ms - BASE_MS) / 60_000);
+    }
+    // The refused batch left nothing behind, not even its new quantity.
+    let quantities = fetch_all_raw!(store, (String,), "SELECT key FROM quantities");
+    assert!(
+        !quantities.iter().any(|(key,)| key == "pm10"),
+        "{quantities:?}"
+    );
 }
 
 async fn pending_buckets_are_marked_with_interval_starts(
