@@ -24,6 +24,7 @@ pub async fn open_state(config: Config, clock: Arc<dyn Clock>) -> anyhow::Result
     let options = StoreOptions {
         max_connections: config.database_max_connections,
         acquire_timeout: config.database_acquire_timeout,
+        history_ms: config.rules.history_ms,
         ..StoreOptions::default()
     };
     let store = connect_with(&config.database_url, &options)

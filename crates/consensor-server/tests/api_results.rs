@@ -20,6 +20,7 @@ on_both_backends!(
     set_aside_listing_review_and_audit,
     roles_and_recompute,
     station_health_shows_a_planted_drift,
+    a_late_reading_recomputes_the_next_interval_it_reaches,
 );
 
 const HOUR_MS: i64 = 3_600_000;
@@ -269,8 +270,9 @@ async fn series_latest_and_revisions(database: TestDatabase) {
     assert_eq!(original["revision"], 1);
     close(&original, "median", 12.5);
     assert_eq!(original["stations_used"], 5);
-    // The other interval is untouched.
-    let untouched = get_ok(
+    // The next interval is computed again, as the late reading lies within the history its
+    // readings are judged on; S7 has no reading there, so its point is the same as before.
+    let recomputed = get_ok(
         &server,
         &format!(
             "/v1/areas/basin/intervals/{}?quantity=air_temperature",
@@ -278,7 +280,9 @@ async fn series_latest_and_revisions(database: TestDatabase) {
         ),
     )
     .await;
-    assert_eq!(untouched["revision"], 1);
+    assert_eq!(recomputed["revision"], 2);
+    close(&recomputed, "median", 13.8);
+    assert_eq!(recomputed["stations_used"], 5);
     // A revision that does not exist, or an interval never computed, is 404.
     for path in [
         format!(
@@ -968,5 +972,66 @@ async fn station_health_shows_a_planted_drift(database: TestDatabase) {
         assert_eq!(status, 422, "{query}: {body}");
         assert_eq!(body["details"][0]["field"], field, "{query}");
     }
+    server.stop().await;
+}
+
+/// A late reading changes the verdict on a later interval that was already computed. Area `ridge`,
+/// stations R1–R5. In [T0 + 10 min, T0 + 20 min) R5 jumps to 25.0 while R1–R4 read 13.0–13.6; R5
+/// has no earlier reading, so there is no step test and its value is set aside by the
+/// cross-station test. Then R5's reading of T0 + 9 min (12.9) comes late: the 25.0 is now a change
+/// of 12.1 in one minute, over the 3.0 limit, so it is a step-suspect; the provisional consensus
+/// does not clear it, and the second interval, computed again, sets it aside as `step` (API.md,
+/// "How an interval is decided", rules 2, 3 and 5).
+async fn a_late_reading_recomputes_the_next_interval_it_reaches(database: TestDatabase) {
+    let server = TestServer::start(database, &[FAST_WORKER]).await;
+    server
+        .network("ridge", &["R1", "R2", "R3", "R4", "R5"])
+        .await;
+    let mut readings = Vec::new();
+    for (station, first, second) in [
+        ("R1", 12.8, 13.0),
+        ("R2", 12.9, 13.2),
+        ("R3", 13.1, 13.4),
+        ("R4", 13.2, 13.6),
+    ] {
+        readings.push(reading(station, json!(first), 1));
+        readings.push(reading(station, json!(second), 11));
+    }
+    readings.push(reading("R5", json!(25.0), 10));
+    server.post_readings(readings).await;
+    wait_until_computed(&server).await;
+
+    let second_interval = format!("area=ridge&from={}&to={}", at(10), at(20));
+    let before = set_aside(&server, &second_interval).await;
+    let items = before["items"].as_array().unwrap();
+    assert_eq!(items.len(), 1, "{before}");
+    assert_eq!(items[0]["station"], "R5");
+    assert_eq!(items[0]["rule"], "far_from_consensus");
+    // Station values [13.0, 13.2, 13.4, 13.6, 25.0]: numpy.median = 13.4, scipy.stats
+    // .median_abs_deviation = 0.2, so the scale is max(1.482602218505602 * 0.2, 0.5) = 0.5 (the
+    // air-temperature floor of the quantity table) and the score (25.0 - 13.4) / 0.5 = 23.2.
+    close(&items[0], "score", 23.2);
+
+    server
+        .post_readings(vec![reading("R5", json!(12.9), 9)])
+        .await;
+    wait_until_computed(&server).await;
+
+    let after = set_aside(&server, &second_interval).await;
+    let items = after["items"].as_array().unwrap();
+    assert_eq!(items.len(), 1, "{after}");
+    assert_eq!(items[0]["rule"], "step");
+    // |25.0 - 12.9| = 12.1 over a one-minute gap, whose limit is the 1-minute figure, 3.0.
+    close(&items[0], "score", 12.1);
+    close(&items[0], "threshold", 3.0);
+    let point = get_ok(
+        &server,
+        &format!(
+            "/v1/areas/ridge/intervals/{}?quantity=air_temperature",
+            at(10)
+        ),
+    )
+    .await;
+    assert_eq!(point["revision"], 2, "{point}");
     server.stop().await;
 }

@@ -2,7 +2,7 @@
 //! duplicate or a revision, and which pending buckets it touches. The backends only fetch the
 //! current values and write the rows this module plans.
 
-use std::collections::{BTreeSet, HashMap};
+use std::collections::{BTreeMap, BTreeSet, HashMap};
 use std::future::Future;
 
 use sqlx::Row;
@@ -60,17 +60,61 @@ pub(crate) struct BatchPlan {
     /// Distinct (area_id, quantity_id, bucket_start_ms), sorted so that concurrent batches lock
     /// pending-bucket rows in the same order and cannot deadlock each other.
     pub buckets: Vec<KeyIds>,
+    /// The intervals after the ones marked whose results a stored reading may change: see
+    /// [`Following`].
+    pub following: Following,
     pub outcome: BatchOutcome,
 }
+
+/// For each (area_id, quantity_id) a batch stored readings of, the interval starts `(after, until)`
+/// between which already computed intervals are marked again. A reading is judged on its station's
+/// readings from `Rules::chain_start` of its time on (the start of the history block before its
+/// own), so a reading at `t` takes part in the judgement of every later reading up to the end of
+/// the history block after `t`'s; an interval computed before a late reading came may therefore
+/// change with it (a step that was a station's first reading now has a previous one; a flat line
+/// gets longer). `after` is the earliest interval the batch marked itself, `until` the end of the
+/// block after the latest reading's.
+pub(crate) type Following = BTreeMap<(i64, i64), (i64, i64)>;
+
+/// Widens `into` by `from`.
+pub(crate) fn merge_following(into: &mut Following, from: &Following) {
+    for (&key, &range) in from {
+        widen(into, key, range);
+    }
+}
+
+fn widen(following: &mut Following, key: (i64, i64), (after, until): (i64, i64)) {
+    following
+        .entry(key)
+        .and_modify(|range| *range = (range.0.min(after), range.1.max(until)))
+        .or_insert((after, until));
+}
+
+/// Marks again the computed intervals of `following` (a table or CTE with columns area_id,
+/// quantity_id, after_ms, until_ms, marked_at_ms, written by each backend in front of this), in key
+/// order so that concurrent batches lock rows in the same order. The results of the intervals
+/// themselves are kept (append-only); the worker computes a new revision.
+pub(crate) const MARK_FOLLOWING: &str = "INSERT INTO pending_buckets (area_id, quantity_id, \
+     bucket_start_ms, marked_at_ms, first_marked_at_ms) \
+     SELECT DISTINCT l.area_id, l.quantity_id, l.bucket_start_ms, m.marked_at_ms, m.marked_at_ms \
+     FROM following m JOIN interval_latest l ON l.area_id = m.area_id \
+     AND l.quantity_id = m.quantity_id AND l.bucket_start_ms > m.after_ms \
+     AND l.bucket_start_ms < m.until_ms \
+     WHERE true ORDER BY l.area_id, l.quantity_id, l.bucket_start_ms \
+     ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
+     marked_at_ms = excluded.marked_at_ms, mark_count = pending_buckets.mark_count + 1";
 
 /// Classifies every reading of a batch against the current values already stored (`current`, keyed
 /// by [`KeyIds`]) and against the readings before it in the same batch, so that a key repeated
 /// within one batch is treated exactly as if it had arrived in two batches. `current` is left
 /// holding what the batch made current, so that batches planned one after the other in one
 /// transaction see each other as if they had been stored one after the other.
+///
+/// `history_ms` is the rules' history block (`Rules::history_ms`), for [`Following`].
 pub(crate) fn plan_batch(
     readings: &[ResolvedReading<'_>],
     current: &mut HashMap<KeyIds, CurrentValue>,
+    history_ms: i64,
 ) -> BatchPlan {
     let mut plan = BatchPlan::default();
     let mut buckets = BTreeSet::new();
@@ -98,11 +142,14 @@ pub(crate) fn plan_batch(
             value_as_sent: reading.value_as_sent,
             unit_as_sent: reading.unit_as_sent.clone(),
         });
-        buckets.insert((
-            resolved.area_id,
-            resolved.quantity_id,
-            bucket_start_ms(reading.observed_at_ms, resolved.interval_ms),
-        ));
+        let bucket = bucket_start_ms(reading.observed_at_ms, resolved.interval_ms);
+        buckets.insert((resolved.area_id, resolved.quantity_id, bucket));
+        let until = (reading.observed_at_ms.div_euclid(history_ms) + 2) * history_ms;
+        widen(
+            &mut plan.following,
+            (resolved.area_id, resolved.quantity_id),
+            (bucket, until),
+        );
         current.insert(
             key,
             CurrentValue {
@@ -249,6 +296,9 @@ where
 mod tests {
     use super::*;
 
+    /// The default history block (`Rules::default().history_ms`).
+    const HOURS_3: i64 = 3 * 3_600_000;
+
     fn reading(value: Option<f64>, unit: Option<&str>) -> NewReading {
         NewReading {
             station: "ST-1".to_owned(),
@@ -278,7 +328,7 @@ mod tests {
         let same = reading(Some(13.9), Some("Cel"));
         let changed = reading(Some(14.2), Some("Cel"));
         let batch = [resolved(&first), resolved(&same), resolved(&changed)];
-        let plan = plan_batch(&batch, &mut HashMap::new());
+        let plan = plan_batch(&batch, &mut HashMap::new(), HOURS_3);
         assert_eq!(
             plan.outcome,
             BatchOutcome {
@@ -291,6 +341,11 @@ mod tests {
         assert_eq!(revisions, vec![0, 1]);
         // 600 000 ms is exactly one 10-minute interval after the epoch, so it starts its bucket.
         assert_eq!(plan.buckets, vec![(3, 2, 600_000)]);
+        // 600 000 ms lies in the first three-hour block [0, 3 h); the block after it ends at 6 h.
+        assert_eq!(
+            plan.following,
+            Following::from([((3, 2), (600_000, 6 * 3_600_000))])
+        );
     }
 
     #[test]
@@ -330,7 +385,7 @@ mod tests {
                 unit_as_sent: None,
             },
         );
-        let plan = plan_batch(&[resolved(&changed)], &mut current);
+        let plan = plan_batch(&[resolved(&changed)], &mut current, HOURS_3);
         assert_eq!(plan.rows[0].revision, 5);
         assert_eq!(plan.outcome.revised, 1);
     }

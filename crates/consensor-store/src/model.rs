@@ -149,6 +149,9 @@ pub struct StoreOptions {
     pub acquire_timeout: std::time::Duration,
     /// How long an SQLite connection waits for another writer's lock before giving up.
     pub sqlite_busy_timeout: std::time::Duration,
+    /// The worker's history block (`Rules::history_ms`): how far after a stored reading computed
+    /// intervals are marked again (`batch::Following`).
+    pub history_ms: i64,
 }
 
 impl Default for StoreOptions {
@@ -157,6 +160,7 @@ impl Default for StoreOptions {
             max_connections: 8,
             acquire_timeout: std::time::Duration::from_secs(10),
             sqlite_busy_timeout: std::time::Duration::from_secs(5),
+            history_ms: consensor_core::checks::Rules::default().history_ms,
         }
     }
 }

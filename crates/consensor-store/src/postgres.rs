@@ -11,7 +11,7 @@ use sqlx::{Postgres, Row, Transaction};
 
 use crate::batch::{
     distinct_sorted, insert_current, missing_keys, plan_batch, with_retries, AttemptError,
-    CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
+    CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT, MARK_FOLLOWING,
 };
 use crate::{
     Area, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken, ReadingKey,
@@ -27,6 +27,8 @@ crate::results_sql::result_queries!(sqlx::Postgres, sqlx::PgConnection);
 #[derive(Debug, Clone)]
 pub struct PostgresStore {
     pool: PgPool,
+    /// The rules' history block, for the intervals a stored reading reaches (`batch::Following`).
+    history_ms: i64,
 }
 
 impl PostgresStore {
@@ -51,7 +53,10 @@ impl PostgresStore {
             .connect_with(connect_options)
             .await?;
         MIGRATOR.run(&pool).await?;
-        Ok(PostgresStore { pool })
+        Ok(PostgresStore {
+            pool,
+            history_ms: options.history_ms,
+        })
     }
 
     /// The underlying pool, for tests and the benchmark harness that need raw SQL. Application code
@@ -108,7 +113,7 @@ impl PostgresStore {
         keys.sort_unstable();
         keys.dedup();
         let mut current = current_values(&mut tx, &keys).await?;
-        let plan = plan_batch(&resolved, &mut current);
+        let plan = plan_batch(&resolved, &mut current, self.history_ms);
 
         if !plan.rows.is_empty() {
             let rows = &plan.rows;
@@ -157,6 +162,22 @@ impl PostgresStore {
             .bind(buckets.iter().map(|bucket| bucket.0).collect::<Vec<_>>())
             .bind(buckets.iter().map(|bucket| bucket.1).collect::<Vec<_>>())
             .bind(buckets.iter().map(|bucket| bucket.2).collect::<Vec<_>>())
+            .bind(now_ms)
+            .execute(&mut *tx)
+            .await?;
+        }
+
+        if !plan.following.is_empty() {
+            let following = &plan.following;
+            sqlx::query(&format!(
+                "WITH following AS (SELECT k.*, $5::bigint AS marked_at_ms \
+                 FROM UNNEST($1::bigint[], $2::bigint[], $3::bigint[], $4::bigint[]) \
+                 AS k(area_id, quantity_id, after_ms, until_ms)) {MARK_FOLLOWING}"
+            ))
+            .bind(following.keys().map(|key| key.0).collect::<Vec<_>>())
+            .bind(following.keys().map(|key| key.1).collect::<Vec<_>>())
+            .bind(following.values().map(|range| range.0).collect::<Vec<_>>())
+            .bind(following.values().map(|range| range.1).collect::<Vec<_>>())
             .bind(now_ms)
             .execute(&mut *tx)
             .await?;

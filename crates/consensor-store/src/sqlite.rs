@@ -17,8 +17,9 @@ use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
 use tokio::sync::oneshot;
 
 use crate::batch::{
-    distinct_sorted, insert_current, missing_keys, plan_batch, with_retries, AttemptError,
-    CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
+    distinct_sorted, insert_current, merge_following, missing_keys, plan_batch, with_retries,
+    AttemptError, CurrentValue, Following, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
+    MARK_FOLLOWING,
 };
 use crate::commit_group::{BatchAnswer, CommitQueue, WaitingBatch};
 use crate::write_gate::LARGE_WRITE_ROWS;
@@ -46,6 +47,8 @@ pub struct SqliteStore {
     gate: std::sync::Arc<crate::write_gate::WriteGate>,
     /// Small batches waiting to be stored together (`commit_group.rs`).
     queue: std::sync::Arc<CommitQueue>,
+    /// The rules' history block, for the intervals a stored reading reaches (`batch::Following`).
+    history_ms: i64,
 }
 
 impl SqliteStore {
@@ -85,6 +88,7 @@ impl SqliteStore {
             direct,
             gate: Default::default(),
             queue: Default::default(),
+            history_ms: options.history_ms,
         })
     }
 
@@ -297,13 +301,15 @@ impl SqliteStore {
 
         let mut rows = Vec::new();
         let mut buckets = BTreeSet::new();
+        let mut following = Following::new();
         let mut marked_at_ms = i64::MIN;
         let stored_answers = answers.iter_mut().filter(|answer| answer.is_ok());
         for ((batch, now_ms), answer) in resolved.iter().zip(stored_answers) {
-            let plan = plan_batch(batch, &mut current);
+            let plan = plan_batch(batch, &mut current, self.history_ms);
             *answer = Ok(plan.outcome);
             rows.extend(plan.rows.into_iter().map(|row| (row, *now_ms)));
             buckets.extend(plan.buckets);
+            merge_following(&mut following, &plan.following);
             marked_at_ms = marked_at_ms.max(*now_ms);
         }
 
@@ -349,6 +355,26 @@ impl SqliteStore {
                  mark_count = pending_buckets.mark_count + 1",
             );
             upsert.build().execute(&mut *tx).await?;
+        }
+
+        let following: Vec<_> = following.into_iter().collect();
+        for chunk in following.chunks(SQLITE_MAX_PARAMETERS / 5) {
+            let mut mark = QueryBuilder::<Sqlite>::new(
+                "WITH following (area_id, quantity_id, after_ms, until_ms, marked_at_ms) AS (",
+            );
+            mark.push_values(
+                chunk,
+                |mut values, &((area_id, quantity_id), (after_ms, until_ms))| {
+                    values
+                        .push_bind(area_id)
+                        .push_bind(quantity_id)
+                        .push_bind(after_ms)
+                        .push_bind(until_ms)
+                        .push_bind(marked_at_ms);
+                },
+            );
+            mark.push(") ").push(MARK_FOLLOWING);
+            mark.build().execute(&mut *tx).await?;
         }
 
         tx.commit().await?;

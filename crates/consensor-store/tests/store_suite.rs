@@ -110,6 +110,7 @@ on_both_backends!(
     concurrent_small_batches_are_answered_each_on_its_own,
     tokens_insert_find_and_revoke,
     claim_then_store_result_removes_the_bucket,
+    a_late_reading_marks_again_the_computed_intervals_it_reaches,
     bucket_marked_again_during_computation_stays_pending,
     a_batch_of_results_gives_each_interval_its_own_revision_records_and_values,
     stale_claim_is_taken_over_and_fresh_one_is_not,
@@ -1086,6 +1087,80 @@ async fn store_outcome(
         .store_result(bucket, outcome, station_ids, &reasons_for(outcome), now_ms)
         .await
         .expect("store result")
+}
+
+/// A reading stored after the intervals following it were computed may change them: a reading is
+/// judged on its station's readings from the start of the history block before its own (three
+/// hours, aligned on the epoch, by default), so a late reading marks again every computed interval
+/// after its own up to the end of the history block after its own, and none beyond.
+async fn a_late_reading_marks_again_the_computed_intervals_it_reaches(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network(store).await;
+    // One reading a minute into each of 25 intervals: BASE_MS (20:30Z) to 00:30Z the next day.
+    let batch: Vec<NewReading> = (0..25)
+        .map(|k| {
+            reading(
+                "ST-1",
+                "air_temperature",
+                BASE_MS + k * INTERVAL_MS + 60_000,
+                13.0,
+            )
+        })
+        .collect();
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    let claimed = claim_all(store, NOW_MS + 1).await;
+    assert_eq!(claimed.len(), 25);
+    let computed = outcome(point(Some(13.0), 1, 0), Vec::new(), Vec::new());
+    for bucket in claimed.values() {
+        store_outcome(store, bucket, &computed, &[], NOW_MS + 2).await;
+    }
+    assert_eq!(store.count_pending_buckets().await.expect("pending"), 0);
+
+    // ST-2's reading of 20:35Z comes late. 20:35Z lies in the block [18:00Z, 21:00Z); the block
+    // after it ends at 00:00Z = BASE_MS + 21 intervals. So its own interval and the 20 computed
+    // ones after it (20:40Z to 23:50Z) are marked, those from 00:00Z on are not.
+    store
+        .insert_batch(
+            &[reading("ST-2", "air_temperature", BASE_MS + 300_000, 13.4)],
+            NOW_MS + 3,
+        )
+        .await
+        .expect("late reading");
+    let pending = fetch_all_raw!(
+        store,
+        (i64, i64),
+        "SELECT bucket_start_ms, marked_at_ms FROM pending_buckets ORDER BY bucket_start_ms"
+    );
+    let expected: Vec<(i64, i64)> = (0..21)
+        .map(|k| (BASE_MS + k * INTERVAL_MS, NOW_MS + 3))
+        .collect();
+    assert_eq!(pending, expected);
+
+    // A reading of the last computed interval reaches no computed interval after it.
+    let reclaimed = claim_all(store, NOW_MS + 4).await;
+    for bucket in reclaimed.values() {
+        store_outcome(store, bucket, &computed, &[], NOW_MS + 5).await;
+    }
+    store
+        .insert_batch(
+            &[reading(
+                "ST-2",
+                "air_temperature",
+                BASE_MS + 24 * INTERVAL_MS + 60_000,
+                13.4,
+            )],
+            NOW_MS + 6,
+        )
+        .await
+        .expect("reading of the last interval");
+    let pending = fetch_all_raw!(
+        store,
+        (i64,),
+        "SELECT bucket_start_ms FROM pending_buckets ORDER BY bucket_start_ms"
+    );
+    assert_eq!(pending, vec![(BASE_MS + 24 * INTERVAL_MS,)]);
 }
 
 async fn claim_then_store_result_removes_the_bucket(store: &AnyStore, _database: &TestDatabase) {
