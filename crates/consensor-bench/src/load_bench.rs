@@ -157,6 +157,9 @@ impl Server {
             .env("CONSENSOR_ADMIN_TOKEN", ADMIN)
             .env("CONSENSOR_LISTEN", "127.0.0.1:0")
             .env_remove("CONSENSOR_CONFIG")
+            // The harness's own setting: the server would read it as a configuration key
+            // (`CONSENSOR_` prefix) and refuse to start on an unknown field.
+            .env_remove("CONSENSOR_BIN")
             .stdout(Stdio::piped())
             .stderr(log)
             .spawn()
