@@ -24,7 +24,7 @@ use common::{TestServer, ADMIN};
 use consensor_server::ingest::{
     decode, decode_batch, BodyFormat, DecodeError, DecodeLimits, DecodedReading,
 };
-use mutation::Mutation;
+use mutation::{cases, Mutation};
 use proptest::prelude::*;
 use proptest::test_runner::{Config as ProptestConfig, FileFailurePersistence, TestRunner};
 use serde_json::{json, Value};
@@ -40,15 +40,6 @@ const FORMATS: [BodyFormat; 3] = [BodyFormat::Json, BodyFormat::Ndjson, BodyForm
 
 /// Cases per decoder property: bounded so the whole file stays well under 30 s in a debug build.
 const DECODER_CASES: u32 = 2000;
-
-/// The number of cases: `default`, or `CONSENSOR_FUZZ_CASES` for a longer campaign by hand (CI
-/// leaves it unset, so the run stays bounded).
-fn cases(default: u32) -> u32 {
-    std::env::var("CONSENSOR_FUZZ_CASES")
-        .ok()
-        .and_then(|text| text.parse().ok())
-        .unwrap_or(default)
-}
 
 fn decoder_config() -> ProptestConfig {
     ProptestConfig {

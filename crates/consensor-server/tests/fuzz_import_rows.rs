@@ -26,7 +26,7 @@ use consensor_server::import::{self, ImportOptions};
 use consensor_server::ingest::{
     decode_text_reading, DecodeError, DecodeLimits, DecodedReading, TextReading,
 };
-use mutation::Mutation;
+use mutation::{cases, Mutation};
 use proptest::prelude::*;
 use proptest::test_runner::{Config as ProptestConfig, FileFailurePersistence, TestRunner};
 
@@ -40,15 +40,6 @@ const FIELDS: [&str; 5] = ["station", "quantity", "value", "unit", "observed_at"
 
 /// Cases per decoder property: bounded so the whole file stays within seconds in a debug build.
 const DECODER_CASES: u32 = 2000;
-
-/// The number of cases: `default`, or `CONSENSOR_FUZZ_CASES` for a longer campaign by hand (CI
-/// leaves it unset, so the run stays bounded).
-fn cases(default: u32) -> u32 {
-    std::env::var("CONSENSOR_FUZZ_CASES")
-        .ok()
-        .and_then(|text| text.parse().ok())
-        .unwrap_or(default)
-}
 
 fn config(default_cases: u32) -> ProptestConfig {
     ProptestConfig {

@@ -7,7 +7,7 @@ use std::future::Future;
 
 use sqlx::Row;
 
-use crate::{BatchOutcome, NewReading, StoreError};
+use crate::{BatchOutcome, NewReading, StationRef, StoreError};
 
 /// The integer identity of a reading: (observed_at_ms, station_id, quantity_id), in the order of the
 /// unique index.
@@ -39,6 +39,28 @@ impl ResolvedReading<'_> {
             self.quantity_id,
         )
     }
+}
+
+/// Resolves each reading's station and quantity keys to ids; every key must be in the maps (the
+/// caller has refused unknown stations and added unknown quantities).
+pub(crate) fn resolve<'a>(
+    readings: &'a [NewReading],
+    stations: &HashMap<String, StationRef>,
+    quantities: &HashMap<String, i64>,
+) -> Vec<ResolvedReading<'a>> {
+    readings
+        .iter()
+        .map(|reading| {
+            let station = stations[&reading.station];
+            ResolvedReading {
+                reading,
+                station_id: station.station_id,
+                area_id: station.area_id,
+                interval_ms: station.interval_ms,
+                quantity_id: quantities[&reading.quantity],
+            }
+        })
+        .collect()
 }
 
 /// One row to append to `readings`.

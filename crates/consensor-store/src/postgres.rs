@@ -10,7 +10,7 @@ use sqlx::postgres::{PgConnectOptions, PgPool, PgPoolOptions};
 use sqlx::{Postgres, Row, Transaction};
 
 use crate::batch::{
-    distinct_sorted, insert_current, missing_keys, plan_batch, with_retries, AttemptError,
+    distinct_sorted, insert_current, missing_keys, plan_batch, resolve, with_retries, AttemptError,
     CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT, MARK_FOLLOWING,
 };
 use crate::{
@@ -96,19 +96,7 @@ impl PostgresStore {
         let quantity_keys = distinct_sorted(readings.iter().map(|reading| &reading.quantity));
         let quantities = ensure_quantities(&mut tx, &quantity_keys).await?;
 
-        let resolved: Vec<ResolvedReading<'_>> = readings
-            .iter()
-            .map(|reading| {
-                let station = stations[&reading.station];
-                ResolvedReading {
-                    reading,
-                    station_id: station.station_id,
-                    area_id: station.area_id,
-                    interval_ms: station.interval_ms,
-                    quantity_id: quantities[&reading.quantity],
-                }
-            })
-            .collect();
+        let resolved = resolve(readings, &stations, &quantities);
         let mut keys: Vec<KeyIds> = resolved.iter().map(ResolvedReading::key).collect();
         keys.sort_unstable();
         keys.dedup();

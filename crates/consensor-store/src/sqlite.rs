@@ -17,9 +17,9 @@ use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
 use tokio::sync::oneshot;
 
 use crate::batch::{
-    distinct_sorted, insert_current, merge_following, missing_keys, plan_batch, with_retries,
-    AttemptError, CurrentValue, Following, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT,
-    MARK_FOLLOWING,
+    distinct_sorted, insert_current, merge_following, missing_keys, plan_batch, resolve,
+    with_retries, AttemptError, CurrentValue, Following, KeyIds, ResolvedReading,
+    CURRENT_VALUES_SELECT, MARK_FOLLOWING,
 };
 use crate::commit_group::{BatchAnswer, CommitQueue, WaitingBatch};
 use crate::write_gate::LARGE_WRITE_ROWS;
@@ -274,22 +274,7 @@ impl SqliteStore {
         let quantities = ensure_quantities(&mut tx, &quantity_keys).await?;
 
         let resolved: Vec<(Vec<ResolvedReading<'_>>, i64)> = stored()
-            .map(|(readings, now_ms)| {
-                let resolved = readings
-                    .iter()
-                    .map(|reading| {
-                        let station = stations[&reading.station];
-                        ResolvedReading {
-                            reading,
-                            station_id: station.station_id,
-                            area_id: station.area_id,
-                            interval_ms: station.interval_ms,
-                            quantity_id: quantities[&reading.quantity],
-                        }
-                    })
-                    .collect();
-                (resolved, *now_ms)
-            })
+            .map(|(readings, now_ms)| (resolve(readings, &stations, &quantities), *now_ms))
             .collect();
         let mut keys: Vec<KeyIds> = resolved
             .iter()

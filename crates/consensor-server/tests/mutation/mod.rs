@@ -5,6 +5,15 @@
 
 use proptest::prelude::*;
 
+/// The number of cases: `default`, or `CONSENSOR_FUZZ_CASES` for a longer campaign by hand (CI
+/// leaves it unset, so the run stays bounded).
+pub fn cases(default: u32) -> u32 {
+    std::env::var("CONSENSOR_FUZZ_CASES")
+        .ok()
+        .and_then(|text| text.parse().ok())
+        .unwrap_or(default)
+}
+
 #[derive(Debug, Clone)]
 pub enum Mutation {
     FlipByte {
