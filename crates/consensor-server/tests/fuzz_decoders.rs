@@ -191,14 +191,7 @@ fn unit() -> impl Strategy<Value = Option<String>> {
 /// A finite value; `serde_json` writes floats in shortest round-trip form, so they decode back
 /// exactly.
 fn value() -> impl Strategy<Value = f64> {
-    prop_oneof![
-        any::<f64>().prop_filter("finite", |v| v.is_finite()),
-        -100.0..100.0f64,
-        Just(-999.0),
-        Just(f64::MAX),
-        Just(f64::MIN_POSITIVE),
-        Just(-0.0),
-    ]
+    mutation::finite_value()
 }
 
 /// A valid reading with a time from the SenML absolute range up to the future limit, to the

@@ -247,15 +247,7 @@ fn unit() -> impl Strategy<Value = Option<String>> {
 fn value() -> impl Strategy<Value = Option<f64>> {
     prop_oneof![
         1 => Just(None),
-        8 => prop_oneof![
-            any::<f64>().prop_filter("finite", |v| v.is_finite()),
-            -100.0..100.0f64,
-            Just(-999.0),
-            Just(f64::MAX),
-            Just(f64::MIN_POSITIVE),
-            Just(-0.0),
-        ]
-        .prop_map(Some),
+        8 => mutation::finite_value().prop_map(Some),
     ]
 }
 

@@ -652,35 +652,43 @@ mod tests {
     use super::*;
     use crate::testing::TestDatabase;
 
+    /// A store on a fresh file with the given (area, station) pairs, 10-minute intervals.
+    async fn store_with(network: &[(&str, &str)]) -> (TestDatabase, SqliteStore) {
+        let database = TestDatabase::sqlite();
+        let store = SqliteStore::connect(&database.url, &StoreOptions::default())
+            .await
+            .expect("open");
+        for &(area, station) in network {
+            store
+                .upsert_area(&NewArea {
+                    key: area.to_owned(),
+                    name: area.to_owned(),
+                    interval_ms: 600_000,
+                })
+                .await
+                .expect("area");
+            store
+                .upsert_station(&NewStation {
+                    key: station.to_owned(),
+                    area_key: area.to_owned(),
+                    name: station.to_owned(),
+                    lat: None,
+                    lon: None,
+                    elevation_m: None,
+                })
+                .await
+                .expect("station");
+        }
+        (database, store)
+    }
+
     /// Small batches that arrive while the write lock is held elsewhere are stored as one group
     /// once it is free, and answered each on its own: the good ones with their outcome, one naming
     /// an unknown station and one that the database refuses (a trigger) with their own errors, the
     /// latter after the group has been stored again batch by batch (`store_batches`).
     #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
     async fn small_batches_waiting_for_the_write_lock_are_stored_as_one_group() {
-        let database = TestDatabase::sqlite();
-        let store = SqliteStore::connect(&database.url, &StoreOptions::default())
-            .await
-            .expect("open");
-        store
-            .upsert_area(&NewArea {
-                key: "north".to_owned(),
-                name: "north".to_owned(),
-                interval_ms: 600_000,
-            })
-            .await
-            .expect("area");
-        store
-            .upsert_station(&NewStation {
-                key: "ST-1".to_owned(),
-                area_key: "north".to_owned(),
-                name: "ST-1".to_owned(),
-                lat: None,
-                lon: None,
-                elevation_m: None,
-            })
-            .await
-            .expect("station");
+        let (database, store) = store_with(&[("north", "ST-1")]).await;
         sqlx::query(
             "CREATE TRIGGER inject_failure BEFORE INSERT ON readings WHEN NEW.value = -1.5 \
              BEGIN SELECT RAISE(ABORT, 'injected failure'); END;",
@@ -728,6 +736,7 @@ mod tests {
         assert!(matches!(&answers[31], Err(StoreError::Other(m)) if m.contains("injected")));
         assert_eq!(store.count_readings().await.expect("count"), 30);
         store.close().await;
+        database.finish().await;
     }
 
     /// The direct read and the pool's read give the same `IntervalData`: current revisions only,
@@ -736,35 +745,12 @@ mod tests {
     /// ("nothing is overwritten"; the latest decision counts).
     #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
     async fn direct_read_equals_the_pool_read() {
-        let database = TestDatabase::sqlite();
-        let store = SqliteStore::connect(&database.url, &StoreOptions::default())
-            .await
-            .expect("open");
+        let (database, store) =
+            store_with(&[("north", "ST-2"), ("north", "ST-1"), ("south", "ST-9")]).await;
         assert!(
             store.direct.is_some(),
             "a database file gets the direct reader"
         );
-        for (area, station) in [("north", "ST-2"), ("north", "ST-1"), ("south", "ST-9")] {
-            store
-                .upsert_area(&NewArea {
-                    key: area.to_owned(),
-                    name: area.to_owned(),
-                    interval_ms: 600_000,
-                })
-                .await
-                .expect("area");
-            store
-                .upsert_station(&NewStation {
-                    key: station.to_owned(),
-                    area_key: area.to_owned(),
-                    name: station.to_owned(),
-                    lat: None,
-                    lon: None,
-                    elevation_m: None,
-                })
-                .await
-                .expect("station");
-        }
         const BASE: i64 = 1_780_000_200_000;
         let reading = |station: &str, minute: i64, value: Option<f64>| NewReading {
             station: station.to_owned(),

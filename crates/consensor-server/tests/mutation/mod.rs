@@ -14,6 +14,19 @@ pub fn cases(default: u32) -> u32 {
         .unwrap_or(default)
 }
 
+/// A finite number, the awkward ones (the largest, the smallest positive, -0.0, a missing-data
+/// code) drawn often.
+pub fn finite_value() -> impl Strategy<Value = f64> {
+    prop_oneof![
+        any::<f64>().prop_filter("finite", |v| v.is_finite()),
+        -100.0..100.0f64,
+        Just(-999.0),
+        Just(f64::MAX),
+        Just(f64::MIN_POSITIVE),
+        Just(-0.0),
+    ]
+}
+
 #[derive(Debug, Clone)]
 pub enum Mutation {
     FlipByte {
