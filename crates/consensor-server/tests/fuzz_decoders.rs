@@ -794,8 +794,10 @@ fn query_string() -> impl Strategy<Value = String> {
         1 => prop::sample::select(PARAM_NAMES.to_vec()).prop_map(str::to_owned),
         // Random printable ASCII, as a hand-typed URL may have.
         1 => "[!-~&&[^#]]{0,40}",
-        // A very long value.
-        1 => (prop::sample::select(PARAM_NAMES.to_vec()), 1000..20_000usize)
+        // A very long value. Six of them stay below 65,534 bytes, the longest URI the test's HTTP
+        // client can send (the `http` crate's limit): a case drawn with five values of up to
+        // 20,000 digits failed in the client ("builder error for url"), never reaching the server.
+        1 => (prop::sample::select(PARAM_NAMES.to_vec()), 1000..10_000usize)
             .prop_map(|(name, len)| format!("{name}={}", "9".repeat(len))),
     ];
     prop::collection::vec(pair, 0..6).prop_map(|pairs| pairs.join("&"))
