@@ -2,7 +2,7 @@
 //! duplicate or a revision, and which pending buckets it touches. The backends only fetch the
 //! current values and write the rows this module plans.
 
-use std::collections::{BTreeMap, BTreeSet, HashMap};
+use std::collections::{BTreeSet, HashMap};
 use std::future::Future;
 
 use sqlx::Row;
@@ -88,28 +88,31 @@ pub(crate) struct BatchPlan {
     pub outcome: BatchOutcome,
 }
 
-/// For each (area_id, quantity_id) a batch stored readings of, the interval starts `(after, until)`
-/// between which already computed intervals are marked again. A reading is judged on its station's
-/// readings from `Rules::chain_start` of its time on (the start of the history block before its
-/// own), so a reading at `t` takes part in the judgement of every later reading up to the end of
-/// the history block after `t`'s; an interval computed before a late reading came may therefore
-/// change with it (a step that was a station's first reading now has a previous one; a flat line
-/// gets longer). `after` is the earliest interval the batch marked itself, `until` the end of the
-/// block after the latest reading's.
-pub(crate) type Following = BTreeMap<(i64, i64), (i64, i64)>;
+/// The already computed intervals a batch's stored readings may change, as ranges
+/// `(area_id, quantity_id, after_ms, until_ms)` of interval starts, `after_ms < start < until_ms`.
+/// A reading is judged on its station's readings from `Rules::chain_start` of its time on (the
+/// start of the history block before its own), so a reading at `t` takes part in the judgement of
+/// every later reading up to the end of the history block after `t`'s: an interval computed before
+/// a late reading came may change with it (a step that was a station's first reading now has a
+/// previous one; a flat line gets longer). Each reading gives the range from its own interval to
+/// the end of that block; overlapping ranges of one area and quantity are joined
+/// ([`coalesce_following`]) and separate ones kept apart, so that a batch holding one old reading
+/// beside today's marks nothing between the two.
+pub(crate) type Following = Vec<(i64, i64, i64, i64)>;
 
-/// Widens `into` by `from`.
-pub(crate) fn merge_following(into: &mut Following, from: &Following) {
-    for (&key, &range) in from {
-        widen(into, key, range);
+/// Sorts `ranges` and joins those of one area and quantity that overlap or touch.
+pub(crate) fn coalesce_following(ranges: &mut Following) {
+    ranges.sort_unstable();
+    let mut joined: Following = Vec::with_capacity(ranges.len());
+    for &(area_id, quantity_id, after, until) in ranges.iter() {
+        match joined.last_mut() {
+            Some(last) if (last.0, last.1) == (area_id, quantity_id) && after <= last.3 => {
+                last.3 = last.3.max(until);
+            }
+            _ => joined.push((area_id, quantity_id, after, until)),
+        }
     }
-}
-
-fn widen(following: &mut Following, key: (i64, i64), (after, until): (i64, i64)) {
-    following
-        .entry(key)
-        .and_modify(|range| *range = (range.0.min(after), range.1.max(until)))
-        .or_insert((after, until));
+    *ranges = joined;
 }
 
 /// Marks again the computed intervals of `following` (a table or CTE with columns area_id,
@@ -167,11 +170,8 @@ pub(crate) fn plan_batch(
         let bucket = bucket_start_ms(reading.observed_at_ms, resolved.interval_ms);
         buckets.insert((resolved.area_id, resolved.quantity_id, bucket));
         let until = (reading.observed_at_ms.div_euclid(history_ms) + 2) * history_ms;
-        widen(
-            &mut plan.following,
-            (resolved.area_id, resolved.quantity_id),
-            (bucket, until),
-        );
+        plan.following
+            .push((resolved.area_id, resolved.quantity_id, bucket, until));
         current.insert(
             key,
             CurrentValue {
@@ -183,6 +183,7 @@ pub(crate) fn plan_batch(
         );
     }
     plan.buckets = buckets.into_iter().collect();
+    coalesce_following(&mut plan.following);
     plan
 }
 
@@ -364,9 +365,32 @@ mod tests {
         // 600 000 ms is exactly one 10-minute interval after the epoch, so it starts its bucket.
         assert_eq!(plan.buckets, vec![(3, 2, 600_000)]);
         // 600 000 ms lies in the first three-hour block [0, 3 h); the block after it ends at 6 h.
+        assert_eq!(plan.following, vec![(3, 2, 600_000, 6 * 3_600_000)]);
+    }
+
+    #[test]
+    fn following_ranges_join_only_where_they_overlap() {
+        let hour = 3_600_000;
+        let mut ranges = vec![
+            // Area 1: 00:00–06:00 and 02:00–09:00 overlap; 10:00–15:00 stands apart.
+            (1, 7, 10 * hour, 15 * hour),
+            (1, 7, 2 * hour, 9 * hour),
+            (1, 7, 0, 6 * hour),
+            // The same times in another area, or for another quantity, are not joined to them.
+            (2, 7, 3 * hour, 9 * hour),
+            (1, 8, 5 * hour, 9 * hour),
+            // A range that starts where the one before ends is joined to it.
+            (2, 7, 9 * hour, 12 * hour),
+        ];
+        coalesce_following(&mut ranges);
         assert_eq!(
-            plan.following,
-            Following::from([((3, 2), (600_000, 6 * 3_600_000))])
+            ranges,
+            vec![
+                (1, 7, 0, 9 * hour),
+                (1, 7, 10 * hour, 15 * hour),
+                (1, 8, 5 * hour, 9 * hour),
+                (2, 7, 3 * hour, 12 * hour),
+            ]
         );
     }
 

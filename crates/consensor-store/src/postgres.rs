@@ -162,10 +162,10 @@ impl PostgresStore {
                  FROM UNNEST($1::bigint[], $2::bigint[], $3::bigint[], $4::bigint[]) \
                  AS k(area_id, quantity_id, after_ms, until_ms)) {MARK_FOLLOWING}"
             ))
-            .bind(following.keys().map(|key| key.0).collect::<Vec<_>>())
-            .bind(following.keys().map(|key| key.1).collect::<Vec<_>>())
-            .bind(following.values().map(|range| range.0).collect::<Vec<_>>())
-            .bind(following.values().map(|range| range.1).collect::<Vec<_>>())
+            .bind(following.iter().map(|range| range.0).collect::<Vec<_>>())
+            .bind(following.iter().map(|range| range.1).collect::<Vec<_>>())
+            .bind(following.iter().map(|range| range.2).collect::<Vec<_>>())
+            .bind(following.iter().map(|range| range.3).collect::<Vec<_>>())
             .bind(now_ms)
             .execute(&mut *tx)
             .await?;

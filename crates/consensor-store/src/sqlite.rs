@@ -17,7 +17,7 @@ use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
 use tokio::sync::oneshot;
 
 use crate::batch::{
-    distinct_sorted, insert_current, merge_following, missing_keys, plan_batch, resolve,
+    coalesce_following, distinct_sorted, insert_current, missing_keys, plan_batch, resolve,
     with_retries, AttemptError, CurrentValue, Following, KeyIds, ResolvedReading,
     CURRENT_VALUES_SELECT, MARK_FOLLOWING,
 };
@@ -294,7 +294,7 @@ impl SqliteStore {
             *answer = Ok(plan.outcome);
             rows.extend(plan.rows.into_iter().map(|row| (row, *now_ms)));
             buckets.extend(plan.buckets);
-            merge_following(&mut following, &plan.following);
+            following.extend(plan.following);
             marked_at_ms = marked_at_ms.max(*now_ms);
         }
 
@@ -342,14 +342,14 @@ impl SqliteStore {
             upsert.build().execute(&mut *tx).await?;
         }
 
-        let following: Vec<_> = following.into_iter().collect();
+        coalesce_following(&mut following);
         for chunk in following.chunks(SQLITE_MAX_PARAMETERS / 5) {
             let mut mark = QueryBuilder::<Sqlite>::new(
                 "WITH following (area_id, quantity_id, after_ms, until_ms, marked_at_ms) AS (",
             );
             mark.push_values(
                 chunk,
-                |mut values, &((area_id, quantity_id), (after_ms, until_ms))| {
+                |mut values, &(area_id, quantity_id, after_ms, until_ms)| {
                     values
                         .push_bind(area_id)
                         .push_bind(quantity_id)

@@ -1161,6 +1161,37 @@ async fn a_late_reading_marks_again_the_computed_intervals_it_reaches(
         "SELECT bucket_start_ms FROM pending_buckets ORDER BY bucket_start_ms"
     );
     assert_eq!(pending, vec![(BASE_MS + 24 * INTERVAL_MS,)]);
+
+    // One batch with a late reading of 20:36Z and one of 00:31Z: each marks its own reach, 20:30Z
+    // to 23:50Z and 00:30Z; the intervals between the two reaches (00:00Z to 00:20Z) stay as
+    // they are, although they lie between the batch's earliest and latest readings.
+    let reclaimed = claim_all(store, NOW_MS + 7).await;
+    for bucket in reclaimed.values() {
+        store_outcome(store, bucket, &computed, &[], NOW_MS + 8).await;
+    }
+    store
+        .insert_batch(
+            &[
+                reading("ST-2", "air_temperature", BASE_MS + 360_000, 13.5),
+                reading(
+                    "ST-2",
+                    "air_temperature",
+                    BASE_MS + 24 * INTERVAL_MS + 60_000,
+                    13.6,
+                ),
+            ],
+            NOW_MS + 9,
+        )
+        .await
+        .expect("two late readings");
+    let pending = fetch_all_raw!(
+        store,
+        (i64,),
+        "SELECT bucket_start_ms FROM pending_buckets ORDER BY bucket_start_ms"
+    );
+    let mut expected: Vec<(i64,)> = (0..21).map(|k| (BASE_MS + k * INTERVAL_MS,)).collect();
+    expected.push((BASE_MS + 24 * INTERVAL_MS,));
+    assert_eq!(pending, expected);
 }
 
 async fn claim_then_store_result_removes_the_bucket(store: &AnyStore, _database: &TestDatabase) {
