@@ -179,15 +179,14 @@ impl SqliteStore {
     /// (`commit_group.rs`).
     async fn insert_grouped(&self, readings: &[NewReading], now_ms: i64) -> BatchAnswer {
         let (answer, answered) = oneshot::channel();
-        self.queue.push(WaitingBatch {
+        let start_turn = self.queue.push(WaitingBatch {
             readings: readings.to_vec(),
             now_ms,
             answer,
         });
-        // The group is stored by a task of its own: a request that its client gives up on is
-        // dropped at its next await, and must not take the batches of the others down with it.
-        let store = self.clone();
-        tokio::spawn(async move { store.commit_waiting().await });
+        if start_turn {
+            self.start_turn();
+        }
         answered.await.unwrap_or_else(|_| {
             Err(StoreError::Other(
                 "the batch's group commit ended without an answer".to_owned(),
@@ -195,11 +194,22 @@ impl SqliteStore {
         })
     }
 
-    /// Waits for a turn at the write lock, then stores the batches waiting then, if an earlier
-    /// turn has not already stored them.
+    /// Starts a turn at the write lock for the batches waiting. It runs as a task of its own: a
+    /// request that its client gives up on is dropped at its next await, and must not take the
+    /// batches of the others down with it.
+    fn start_turn(&self) {
+        let store = self.clone();
+        tokio::spawn(async move { store.commit_waiting().await });
+    }
+
+    /// Waits for a turn at the write lock, then stores the batches waiting then (starting the next
+    /// turn first if some must wait for another group).
     async fn commit_waiting(&self) {
         let _pass = self.write_pass(0).await;
-        let group = self.queue.take_group();
+        let (group, more) = self.queue.take_group();
+        if more {
+            self.start_turn();
+        }
         if group.is_empty() {
             return;
         }
