@@ -216,7 +216,7 @@ pub fn screen_interval(input: &IntervalInput<'_>) -> IntervalOutcome {
 #[derive(Debug, Default)]
 pub struct IntervalScreen {
     verdicts: Vec<Judged>,
-    flat_window: SlidingWindow,
+    chains: [Chain; 2],
     stations: Vec<StationWork>,
     values: Vec<f64>,
     scratch: Vec<f64>,
@@ -338,7 +338,7 @@ impl IntervalScreen {
         for station in input.stations {
             let first = self.verdicts.len();
             judge_readings(
-                &mut self.flat_window,
+                &mut self.chains,
                 &judging,
                 station.readings,
                 input.start_ms,
@@ -372,14 +372,7 @@ impl IntervalScreen {
         to_ms: i64,
         out: &mut Vec<Judged>,
     ) {
-        judge_readings(
-            &mut self.flat_window,
-            judging,
-            readings,
-            from_ms,
-            to_ms,
-            out,
-        );
+        judge_readings(&mut self.chains, judging, readings, from_ms, to_ms, out);
     }
 
     /// Steps 3 to 6 on readings judged by [`IntervalScreen::judge`]: the same outcome as
@@ -626,11 +619,21 @@ impl IntervalScreen {
 }
 
 /// Steps 1 and 2 for one station's readings observed in `[from_ms, to_ms)`, appended to `out`. The
-/// readings are cut into blocks of `rules.history_ms` aligned on the epoch; the readings of one block
-/// are judged in one pass over the station's readings from the start of the block before it, so each
-/// reading's verdict depends only on its own station's readings from `rules.chain_start(t)` on.
+/// readings are cut into blocks of `rules.history_ms` aligned on the epoch, and the readings of one
+/// block are judged by a chain of steps 1 and 2 started afresh at the start of the block before it,
+/// so each reading's verdict depends only on its own station's readings from `rules.chain_start(t)`
+/// on.
+///
+/// Walking every block twice (once as history, once judged) is not needed: while the `lead` chain
+/// judges a block, a `fresh` chain started at the block's start follows it until the two hold the
+/// same state (the same flat-line window, previous in-range and previous accepted reading), which
+/// usually happens once the flat-line window has moved past the block's start. From then on both
+/// would give every later reading the same verdict, so the lead chain at the block's end is the
+/// fresh chain the next block needs. When they never meet (a station whose level moved for good
+/// stays set aside as steps by the older chain), the fresh chain walks the whole block and takes
+/// over as the lead. The outcome is that of [`judge_readings_block_by_block`], which a test checks.
 fn judge_readings(
-    window: &mut SlidingWindow,
+    chains: &mut [Chain; 2],
     judging: &Judging<'_>,
     readings: &[Reading],
     from_ms: i64,
@@ -639,47 +642,114 @@ fn judge_readings(
 ) {
     let history = judging.rules.history_ms;
     assert!(history > 0, "rules.history_ms must be positive");
-    let mut block_from = from_ms;
-    while block_from < to_ms {
-        let block_start = block_from.div_euclid(history) * history;
-        let block_end = block_start.saturating_add(history).min(to_ms);
-        let anchor = judging.rules.chain_start(block_from);
-        let low = readings.partition_point(|r| r.observed_at_ms < anchor);
-        let high = readings.partition_point(|r| r.observed_at_ms < block_end);
-        judge_chain(window, judging, &readings[low..high], block_from, out);
-        block_from = block_end;
+    if from_ms >= to_ms {
+        return;
+    }
+    let [lead, fresh] = chains;
+    let mut block_start = from_ms.div_euclid(history) * history;
+    // The first block's lead chain starts at the block before it, and walks that block as history.
+    lead.restart();
+    let mut next =
+        readings.partition_point(|r| r.observed_at_ms < judging.rules.chain_start(from_ms));
+    while let Some(reading) = readings
+        .get(next)
+        .filter(|r| r.observed_at_ms < block_start)
+    {
+        lead.judge(judging, reading);
+        next += 1;
+    }
+    loop {
+        let block_end = block_start.saturating_add(history);
+        let last = block_end >= to_ms;
+        fresh.restart();
+        // The last block needs no chain for a block after it.
+        let mut met = last;
+        while let Some(reading) = readings
+            .get(next)
+            .filter(|r| r.observed_at_ms < block_end.min(to_ms))
+        {
+            let verdict = lead.judge(judging, reading);
+            if reading.observed_at_ms >= from_ms {
+                out.push(Judged(verdict));
+            }
+            if !met {
+                fresh.judge(judging, reading);
+                met = fresh.has_caught_up_with(lead, block_start);
+            }
+            next += 1;
+        }
+        if last {
+            return;
+        }
+        if !met {
+            std::mem::swap(lead, fresh);
+        }
+        block_start = block_end;
     }
 }
 
-/// One pass of steps 1 and 2 over a station's readings in time order, each judged on those before it;
-/// the verdicts of the readings observed at or after `record_from_ms` are appended to `out`.
-fn judge_chain(
-    window: &mut SlidingWindow,
-    judging: &Judging<'_>,
-    readings: &[Reading],
-    record_from_ms: i64,
-    out: &mut Vec<Judged>,
-) {
-    let spec = judging.quantity;
-    let rules = judging.rules;
-    window.clear();
-    let mut previous_in_range: Option<i64> = None;
-    let mut previous_accepted: Option<(i64, f64)> = None;
-    let mut previous_time = i64::MIN;
-    for reading in readings {
+/// The state of one chain of steps 1 and 2 over a station's readings: each reading is judged on the
+/// readings before it since the chain started.
+#[derive(Debug)]
+struct Chain {
+    window: SlidingWindow,
+    previous_in_range: Option<i64>,
+    previous_accepted: Option<(i64, f64)>,
+    previous_time: i64,
+}
+
+impl Default for Chain {
+    fn default() -> Self {
+        Chain {
+            window: SlidingWindow::default(),
+            previous_in_range: None,
+            previous_accepted: None,
+            previous_time: i64::MIN,
+        }
+    }
+}
+
+impl Chain {
+    fn restart(&mut self) {
+        self.window.clear();
+        self.previous_in_range = None;
+        self.previous_accepted = None;
+        self.previous_time = i64::MIN;
+    }
+
+    /// Whether this chain, started at `started_ms`, now holds the same state as `lead`, which
+    /// started earlier and has judged the same readings since `started_ms`: then both judge every
+    /// later reading alike.
+    fn has_caught_up_with(&self, lead: &Chain, started_ms: i64) -> bool {
+        self.previous_accepted == lead.previous_accepted
+            && self.previous_in_range == lead.previous_in_range
+            && lead
+                .window
+                .members
+                .front()
+                .is_none_or(|&(time, _)| time >= started_ms)
+            && self.window == lead.window
+    }
+
+    /// Steps 1 and 2 on the next reading of the chain.
+    ///
+    /// Panics if the readings are not sorted by time.
+    fn judge(&mut self, judging: &Judging<'_>, reading: &Reading) -> Verdict {
+        let spec = judging.quantity;
+        let rules = judging.rules;
         let time = reading.observed_at_ms;
         assert!(
-            time > previous_time,
+            time > self.previous_time,
             "readings of one station must be sorted by time without repeats"
         );
-        previous_time = time;
+        self.previous_time = time;
         let overturned =
             !judging.overturned.is_empty() && judging.overturned.binary_search(&reading.id).is_ok();
-        let verdict = match reading.value {
+        match reading.value {
             Some(value) if overturned => {
-                window.retire_up_to(time - rules.flat_window_ms);
-                window.push(time, value);
-                previous_accepted = Some((time, value));
+                self.window.retire_up_to(time - rules.flat_window_ms);
+                self.window.push(time, value);
+                self.previous_accepted = Some((time, value));
                 Verdict::Passed
             }
             None => Verdict::Hard {
@@ -700,21 +770,49 @@ fn judge_chain(
                         window_readings: None,
                     }
                 } else if let Some(verdict) =
-                    range_verdict(judging, value, time, &mut previous_in_range)
+                    range_verdict(judging, value, time, &mut self.previous_in_range)
                 {
                     verdict
                 } else {
-                    window.retire_up_to(time - rules.flat_window_ms);
-                    window.push(time, value);
-                    flat_line_verdict(spec, rules, window)
-                        .or_else(|| step_verdict(spec, value, time, &mut previous_accepted))
+                    self.window.retire_up_to(time - rules.flat_window_ms);
+                    self.window.push(time, value);
+                    flat_line_verdict(spec, rules, &self.window)
+                        .or_else(|| step_verdict(spec, value, time, &mut self.previous_accepted))
                         .unwrap_or(Verdict::Passed)
                 }
             }
-        };
-        if time >= record_from_ms {
-            out.push(Judged(verdict));
         }
+    }
+}
+
+/// [`judge_readings`] as the rules define it, each block walked by a chain of its own from the start
+/// of the block before it: the reference the faster walk is checked against.
+#[cfg(test)]
+fn judge_readings_block_by_block(
+    judging: &Judging<'_>,
+    readings: &[Reading],
+    from_ms: i64,
+    to_ms: i64,
+    out: &mut Vec<Judged>,
+) {
+    let history = judging.rules.history_ms;
+    let mut chain = Chain::default();
+    let mut block_from = from_ms;
+    while block_from < to_ms {
+        let block_start = block_from.div_euclid(history) * history;
+        let block_end = block_start.saturating_add(history).min(to_ms);
+        let anchor = judging.rules.chain_start(block_from);
+        chain.restart();
+        for reading in readings
+            .iter()
+            .filter(|r| r.observed_at_ms >= anchor && r.observed_at_ms < block_end)
+        {
+            let verdict = chain.judge(judging, reading);
+            if reading.observed_at_ms >= block_from {
+                out.push(Judged(verdict));
+            }
+        }
+        block_from = block_end;
     }
 }
 
@@ -815,7 +913,7 @@ fn range_verdict(
 /// The readings of one station that passed the first three rules within the flat-line window, with
 /// their running minimum and maximum kept in monotonic queues, so that each reading costs O(1)
 /// amortised instead of a scan of the whole window.
-#[derive(Debug, Default)]
+#[derive(Debug, Default, PartialEq)]
 struct SlidingWindow {
     members: VecDeque<(i64, f64)>,
     /// Decreasing values: the front is the window's maximum.
@@ -1004,4 +1102,108 @@ fn record_for(
         }
     }
     Some(record)
+}
+
+#[cfg(test)]
+mod tests {
+    //! The one-walk judgement of [`judge_readings`] against the rules' definition, each history
+    //! block walked by a chain of its own ([`judge_readings_block_by_block`]). A property of our own
+    //! design, checked on random series with planted faults.
+
+    use super::*;
+    use crate::checks::default_quantities;
+    use proptest::prelude::*;
+
+    const MINUTE: i64 = 60_000;
+    /// 2026-06-01T07:04:00Z: not on a history-block boundary.
+    const T0: i64 = 1_780_297_440_000;
+
+    /// What a station sent in one minute.
+    #[derive(Debug, Clone, Copy)]
+    enum Minute {
+        Absent,
+        Null,
+        Code,
+        Stuck,
+        /// A jump of this many tenths from the smooth course.
+        Jump(i32),
+        /// The level moves for good by this many tenths: chains started before and after the move
+        /// disagree for as long as no gap breaks the older one, so they never meet.
+        Shift(i32),
+        Normal,
+    }
+
+    fn minute() -> impl Strategy<Value = Minute> {
+        prop_oneof![
+            40 => Just(Minute::Normal),
+            4 => Just(Minute::Absent),
+            1 => Just(Minute::Null),
+            1 => Just(Minute::Code),
+            8 => Just(Minute::Stuck),
+            2 => (-80i32..80).prop_map(Minute::Jump),
+            1 => prop_oneof![(-90i32..-40), (40i32..90)].prop_map(Minute::Shift),
+        ]
+    }
+
+    fn readings(kinds: &[Minute], step_minutes: i64, base: f64) -> Vec<Reading> {
+        let (mut level, mut last) = (base, base);
+        let mut out = Vec::new();
+        for (index, kind) in kinds.iter().enumerate() {
+            if let Minute::Shift(tenths) = *kind {
+                level += f64::from(tenths) / 10.0;
+            }
+            let smooth = level + (index as f64 / 40.0).sin() * 2.0;
+            let value = match *kind {
+                Minute::Absent => continue,
+                Minute::Null => None,
+                Minute::Code => Some(-999.0),
+                Minute::Stuck => Some(last),
+                Minute::Jump(tenths) => Some(smooth + f64::from(tenths) / 10.0),
+                Minute::Normal | Minute::Shift(_) => Some(smooth),
+            };
+            if let Some(value) = value.filter(|&v| v != -999.0) {
+                last = value;
+            }
+            out.push(Reading {
+                id: index as u64,
+                observed_at_ms: T0 + index as i64 * step_minutes * MINUTE,
+                value,
+                value_as_sent: value,
+            });
+        }
+        out
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig::with_cases(256))]
+
+        #[test]
+        fn one_walk_judges_as_each_block_on_its_own(
+            kinds in prop::collection::vec(minute(), 0..900),
+            quantity in prop::sample::select(vec!["air_temperature", "precipitation", "wind_direction", "relative_humidity"]),
+            step_minutes in prop::sample::select(vec![1i64, 2, 5]),
+            base in prop::sample::select(vec![0.0f64, 15.0, 99.95, 359.0]),
+            overturns in prop::collection::vec(0u64..900, 0..6),
+            from_minute in -200i64..1500,
+            length_minutes in 0i64..1500,
+            history_minutes in prop::sample::select(vec![60i64, 180, 45]),
+        ) {
+            let spec = default_quantities().into_iter().find(|q| q.key == quantity).unwrap();
+            let rules = Rules { history_ms: history_minutes * MINUTE, ..Rules::default() };
+            let mut overturned = overturns;
+            overturned.sort_unstable();
+            overturned.dedup();
+            let judging = Judging { quantity: &spec, rules: &rules, interval_ms: 10 * MINUTE, overturned: &overturned };
+            let series = readings(&kinds, step_minutes, base);
+            let from = T0 + from_minute * MINUTE;
+            let to = from + length_minutes * MINUTE;
+            let (mut fast, mut reference) = (Vec::new(), Vec::new());
+            // Chains left over from another station must not matter: judge one first.
+            let mut chains: [Chain; 2] = Default::default();
+            judge_readings(&mut chains, &judging, &series[..series.len() / 2], T0, T0 + 600 * MINUTE, &mut Vec::new());
+            judge_readings(&mut chains, &judging, &series, from, to, &mut fast);
+            judge_readings_block_by_block(&judging, &series, from, to, &mut reference);
+            prop_assert_eq!(fast, reference);
+        }
+    }
 }
