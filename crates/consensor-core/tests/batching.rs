@@ -12,10 +12,6 @@ use consensor_core::checks::{
 };
 use proptest::prelude::*;
 
-const MINUTE: i64 = 60_000;
-/// 2026-06-01T07:04:00Z in epoch milliseconds: deliberately not on a history-block boundary.
-const T0: i64 = 1_780_297_440_000;
-
 fn quantity(key: &str) -> QuantitySpec {
     default_quantities()
         .into_iter()
@@ -23,67 +19,9 @@ fn quantity(key: &str) -> QuantitySpec {
         .unwrap()
 }
 
-/// One station's minutes: a value (or a fault) per minute, some minutes missing.
-#[derive(Debug, Clone, Copy)]
-enum Minute {
-    Absent,
-    Null,
-    Code,
-    /// Stuck on the previous value.
-    Stuck,
-    /// A jump of this many tenths of a degree from the smooth course.
-    Jump(i32),
-    /// The course moves for good by this many tenths of a degree (a sensor swapped or recalibrated):
-    /// a chain that starts before the move sets the new level aside as steps for as long as no gap
-    /// breaks the chain, one that starts after it does not.
-    Shift(i32),
-    Normal,
-}
-
-fn minute_kind() -> impl Strategy<Value = Minute> {
-    prop_oneof![
-        40 => Just(Minute::Normal),
-        3 => Just(Minute::Absent),
-        1 => Just(Minute::Null),
-        1 => Just(Minute::Code),
-        6 => Just(Minute::Stuck),
-        2 => (-80i32..80).prop_map(Minute::Jump),
-        1 => prop_oneof![(-90i32..-40), (40i32..90)].prop_map(Minute::Shift),
-    ]
-}
-
-/// Builds one station's readings from its minute kinds; ids are unique over all stations.
-fn series(station: usize, kinds: &[Minute], offset: f64) -> Vec<Reading> {
-    let mut readings = Vec::new();
-    let mut last = 15.0 + offset;
-    let mut level = 15.0 + offset;
-    for (minute, kind) in kinds.iter().enumerate() {
-        if let Minute::Shift(tenths) = *kind {
-            level += f64::from(tenths) / 10.0;
-        }
-        let smooth = level + (minute as f64 / 40.0).sin() * 2.0;
-        let value = match *kind {
-            Minute::Absent => continue,
-            Minute::Null => None,
-            Minute::Code => Some(-999.0),
-            Minute::Stuck => Some(last),
-            Minute::Jump(tenths) => Some(smooth + f64::from(tenths) / 10.0),
-            Minute::Normal | Minute::Shift(_) => Some(smooth),
-        };
-        if let Some(value) = value {
-            if value != -999.0 {
-                last = value;
-            }
-        }
-        readings.push(Reading {
-            id: (station * 100_000 + minute) as u64,
-            observed_at_ms: T0 + minute as i64 * MINUTE,
-            value,
-            value_as_sent: value,
-        });
-    }
-    readings
-}
+#[path = "../src/checks/planted_faults.rs"]
+mod planted_faults;
+use planted_faults::{minute_kind, series, MINUTE, T0};
 
 fn network() -> impl Strategy<Value = (Vec<Vec<Reading>>, Vec<u64>)> {
     // Four stations over 9 hours: long enough for runs that cross several 3-hour history blocks.
@@ -99,7 +37,14 @@ fn network() -> impl Strategy<Value = (Vec<Vec<Reading>>, Vec<u64>)> {
             let series: Vec<Vec<Reading>> = stations
                 .iter()
                 .enumerate()
-                .map(|(index, (kinds, offset))| series(index, kinds, f64::from(*offset) / 10.0))
+                .map(|(index, (kinds, offset))| {
+                    series(
+                        kinds,
+                        (index * 100_000) as u64,
+                        1,
+                        15.0 + f64::from(*offset) / 10.0,
+                    )
+                })
                 .collect();
             let mut overturned: Vec<u64> = overturns
                 .into_iter()

@@ -1114,72 +1114,14 @@ mod tests {
     use crate::checks::default_quantities;
     use proptest::prelude::*;
 
-    const MINUTE: i64 = 60_000;
-    /// 2026-06-01T07:04:00Z: not on a history-block boundary.
-    const T0: i64 = 1_780_297_440_000;
-
-    /// What a station sent in one minute.
-    #[derive(Debug, Clone, Copy)]
-    enum Minute {
-        Absent,
-        Null,
-        Code,
-        Stuck,
-        /// A jump of this many tenths from the smooth course.
-        Jump(i32),
-        /// The level moves for good by this many tenths: chains started before and after the move
-        /// disagree for as long as no gap breaks the older one, so they never meet.
-        Shift(i32),
-        Normal,
-    }
-
-    fn minute() -> impl Strategy<Value = Minute> {
-        prop_oneof![
-            40 => Just(Minute::Normal),
-            4 => Just(Minute::Absent),
-            1 => Just(Minute::Null),
-            1 => Just(Minute::Code),
-            8 => Just(Minute::Stuck),
-            2 => (-80i32..80).prop_map(Minute::Jump),
-            1 => prop_oneof![(-90i32..-40), (40i32..90)].prop_map(Minute::Shift),
-        ]
-    }
-
-    fn readings(kinds: &[Minute], step_minutes: i64, base: f64) -> Vec<Reading> {
-        let (mut level, mut last) = (base, base);
-        let mut out = Vec::new();
-        for (index, kind) in kinds.iter().enumerate() {
-            if let Minute::Shift(tenths) = *kind {
-                level += f64::from(tenths) / 10.0;
-            }
-            let smooth = level + (index as f64 / 40.0).sin() * 2.0;
-            let value = match *kind {
-                Minute::Absent => continue,
-                Minute::Null => None,
-                Minute::Code => Some(-999.0),
-                Minute::Stuck => Some(last),
-                Minute::Jump(tenths) => Some(smooth + f64::from(tenths) / 10.0),
-                Minute::Normal | Minute::Shift(_) => Some(smooth),
-            };
-            if let Some(value) = value.filter(|&v| v != -999.0) {
-                last = value;
-            }
-            out.push(Reading {
-                id: index as u64,
-                observed_at_ms: T0 + index as i64 * step_minutes * MINUTE,
-                value,
-                value_as_sent: value,
-            });
-        }
-        out
-    }
+    use crate::checks::planted_faults::{minute_kind, series, MINUTE, T0};
 
     proptest! {
         #![proptest_config(ProptestConfig::with_cases(256))]
 
         #[test]
         fn one_walk_judges_as_each_block_on_its_own(
-            kinds in prop::collection::vec(minute(), 0..900),
+            kinds in prop::collection::vec(minute_kind(), 0..900),
             quantity in prop::sample::select(vec!["air_temperature", "precipitation", "wind_direction", "relative_humidity"]),
             step_minutes in prop::sample::select(vec![1i64, 2, 5]),
             base in prop::sample::select(vec![0.0f64, 15.0, 99.95, 359.0]),
@@ -1194,7 +1136,7 @@ mod tests {
             overturned.sort_unstable();
             overturned.dedup();
             let judging = Judging { quantity: &spec, rules: &rules, interval_ms: 10 * MINUTE, overturned: &overturned };
-            let series = readings(&kinds, step_minutes, base);
+            let series = series(&kinds, 0, step_minutes, base);
             let from = T0 + from_minute * MINUTE;
             let to = from + length_minutes * MINUTE;
             let (mut fast, mut reference) = (Vec::new(), Vec::new());

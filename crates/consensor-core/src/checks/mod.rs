@@ -2,6 +2,8 @@
 //! and why, and the consensus `Point` of what is left.
 
 pub mod interval;
+#[cfg(test)]
+mod planted_faults;
 pub mod quantity;
 
 pub use interval::{
