@@ -393,6 +393,7 @@ async fn live(
     };
     let backlog = WorkerSettings {
         open_interval_refresh: std::time::Duration::ZERO,
+        settle: std::time::Duration::ZERO,
         ..settings.clone()
     };
     run_until_idle(&state, &backlog, start_ms + history * MINUTE).await?;

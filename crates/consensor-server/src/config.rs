@@ -303,6 +303,8 @@ struct RawWorker {
     poll_interval_seconds: f64,
     #[serde(default = "default_open_refresh")]
     open_interval_refresh_seconds: f64,
+    #[serde(default = "default_settle")]
+    settle_seconds: f64,
 }
 
 impl Default for RawWorker {
@@ -314,6 +316,7 @@ impl Default for RawWorker {
             history_minutes: default_history(),
             poll_interval_seconds: default_poll(),
             open_interval_refresh_seconds: default_open_refresh(),
+            settle_seconds: default_settle(),
         }
     }
 }
@@ -335,6 +338,11 @@ fn default_history() -> f64 {
 fn default_open_refresh() -> f64 {
     crate::worker::WorkerSettings::default()
         .open_interval_refresh
+        .as_secs_f64()
+}
+fn default_settle() -> f64 {
+    crate::worker::WorkerSettings::default()
+        .settle
         .as_secs_f64()
 }
 fn default_poll() -> f64 {
@@ -403,6 +411,17 @@ fn default_far_limit() -> f64 {
 fn seconds(name: &str, value: f64) -> anyhow::Result<Duration> {
     if !(value > 0.0 && value.is_finite() && value < 1e9) {
         bail!("{name}: {value} must be a positive number of seconds");
+    }
+    Ok(Duration::from_secs_f64(value))
+}
+
+/// Like [`seconds`], but 0 is allowed too (the setting then turns its wait off).
+fn seconds_or_zero(name: &str, value: f64) -> anyhow::Result<Duration> {
+    if value == 0.0 {
+        return Ok(Duration::ZERO);
+    }
+    if !(value > 0.0 && value.is_finite() && value < 1e9) {
+        bail!("{name}: {value} must be 0 or a positive number of seconds");
     }
     Ok(Duration::from_secs_f64(value))
 }
@@ -504,6 +523,7 @@ impl RawConfig {
                 "worker.open_interval_refresh_seconds",
                 self.worker.open_interval_refresh_seconds,
             )?,
+            settle: seconds_or_zero("worker.settle_seconds", self.worker.settle_seconds)?,
         };
         Ok(Config {
             listen,
@@ -656,6 +676,26 @@ mod tests {
         assert_eq!(config.database_acquire_timeout, Duration::from_secs(10));
         assert_eq!(config.quantities.len(), 10);
         assert!(!config.public_read);
+    }
+
+    #[test]
+    fn settle_time_may_be_zero_but_not_negative() {
+        // Our own setting: 1 s by default, 0 turns the wait off.
+        let config = Config::load(None, env(&[]), &[]).unwrap();
+        assert_eq!(config.worker.settle, Duration::from_secs(1));
+        let off = Config::load(None, env(&[("CONSENSOR_WORKER__SETTLE_SECONDS", "0")]), &[]);
+        assert_eq!(off.unwrap().worker.settle, Duration::ZERO);
+        let error = Config::load(
+            None,
+            env(&[("CONSENSOR_WORKER__SETTLE_SECONDS", "-1")]),
+            &[],
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            error.contains("worker.settle_seconds") && error.contains("0 or a positive"),
+            "{error}"
+        );
     }
 
     #[test]

@@ -536,7 +536,7 @@ async fn backup_releases_the_claims_the_live_worker_held() {
     assert_eq!(store.count_pending_buckets().await.unwrap(), 4);
     // A worker of the live server claims three of them and is still computing.
     let claimed = store
-        .claim_buckets("worker-live", now_ms, 3, 300_000, 0)
+        .claim_buckets("worker-live", now_ms, 3, 300_000, 0, 0)
         .await
         .unwrap();
     assert_eq!(claimed.len(), 3);
@@ -559,7 +559,7 @@ async fn backup_releases_the_claims_the_live_worker_held() {
         .expect("open copy");
     assert_eq!(copy.count_pending_buckets().await.unwrap(), 4);
     let claimed = copy
-        .claim_buckets("worker-restored", now_ms + 1000, 10, 300_000, 0)
+        .claim_buckets("worker-restored", now_ms + 1000, 10, 300_000, 0, 0)
         .await
         .unwrap();
     assert_eq!(claimed.len(), 4);
@@ -567,7 +567,7 @@ async fn backup_releases_the_claims_the_live_worker_held() {
     // The live database itself is untouched: its three claims are still held.
     let store = consensor_store::connect(&live_url).await.expect("reopen");
     let claimed = store
-        .claim_buckets("worker-other", now_ms + 1000, 10, 300_000, 0)
+        .claim_buckets("worker-other", now_ms + 1000, 10, 300_000, 0, 0)
         .await
         .unwrap();
     assert_eq!(claimed.len(), 1);

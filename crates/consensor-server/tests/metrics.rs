@@ -673,7 +673,10 @@ async fn worker_lag_queue_pool_and_compute_time(database: TestDatabase) {
     let now = server.clock.now_ms();
     let computed = consensor_server::worker::run_until_idle(
         &server.state,
-        &consensor_server::worker::WorkerSettings::default(),
+        &consensor_server::worker::WorkerSettings {
+            settle: std::time::Duration::ZERO,
+            ..consensor_server::worker::WorkerSettings::default()
+        },
         now,
     )
     .await

@@ -17,7 +17,8 @@ use consensor_store::{NewReading, ReviewDecision, SetAsideFilter, Store};
 
 on_both_backends!(
     worker_decides_revises_and_honours_overturns,
-    neighbouring_intervals_decided_together_match_one_at_a_time
+    neighbouring_intervals_decided_together_match_one_at_a_time,
+    an_ended_interval_is_computed_once_its_marks_have_settled
 );
 
 const MINUTE: i64 = 60_000;
@@ -72,6 +73,7 @@ async fn worker_decides_revises_and_honours_overturns(database: TestDatabase) {
         .unwrap();
     let settings = WorkerSettings {
         claim_batch: 3,
+        settle: std::time::Duration::ZERO,
         ..WorkerSettings::default()
     };
     let computed = run_until_idle(&state, &settings, clock_now(&clock))
@@ -222,6 +224,44 @@ async fn open_with_area(
     state
 }
 
+/// With the configured default (`worker.settle_seconds`, 1 s), an interval that has ended waits
+/// until no batch has marked it for a second, so that a burst re-marking it is computed once it
+/// has passed; a batch arriving meanwhile restarts the wait.
+async fn an_ended_interval_is_computed_once_its_marks_have_settled(database: TestDatabase) {
+    let clock = Arc::new(TestClock::at(T0_MS + 3_600_000));
+    let state = open_with_area(&database, clock.clone(), "west-fields", &["W-0", "W-1"]).await;
+    let settings = state.config.worker.clone();
+    assert_eq!(settings.settle, std::time::Duration::from_secs(1));
+    let now = T0_MS + 3_600_000;
+    let step = |at_ms: i64| {
+        clock.set_ms(at_ms);
+        let (state, settings) = (state.clone(), settings.clone());
+        async move { run_once(&state, &settings, at_ms).await.unwrap().computed }
+    };
+    state
+        .store
+        .insert_batch(&[reading("W-0", 1, 15.0)], now)
+        .await
+        .unwrap();
+    assert_eq!(step(now + 400).await, 0, "marked 0.4 s ago");
+    state
+        .store
+        .insert_batch(&[reading("W-1", 2, 15.2)], now + 600)
+        .await
+        .unwrap();
+    assert_eq!(step(now + 1_200).await, 0, "marked again 0.6 s ago");
+    assert_eq!(step(now + 1_600).await, 1, "quiet for 1 s");
+    let latest = state
+        .store
+        .latest("west-fields", "air_temperature")
+        .await
+        .unwrap()
+        .expect("computed");
+    // Both readings were in: numpy 2.4.6 `np.median([15.0, 15.2])` = 15.1.
+    assert!((latest.point.median.unwrap() - 15.1).abs() < 1e-12);
+    assert_eq!(state.store.count_pending_buckets().await.unwrap(), 0);
+}
+
 fn clock_now(clock: &TestClock) -> i64 {
     use consensor_server::state::Clock;
     clock.now_ms()
@@ -273,6 +313,7 @@ async fn neighbouring_intervals_decided_together_match_one_at_a_time(database: T
         }
         let settings = WorkerSettings {
             claim_batch,
+            settle: std::time::Duration::ZERO,
             ..WorkerSettings::default()
         };
         let computed = run_until_idle(&state, &settings, clock_now(&clock))

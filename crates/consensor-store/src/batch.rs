@@ -187,6 +187,16 @@ pub(crate) fn plan_batch(
     plan
 }
 
+/// The newest `marked_at_ms` an ended interval may have to be claimed at `now_ms` when marks must
+/// have settled for `settle_ms` (see `Store::claim_buckets`); no limit when `settle_ms` is 0.
+pub(crate) fn settled_before(now_ms: i64, settle_ms: i64) -> i64 {
+    if settle_ms > 0 {
+        now_ms.saturating_sub(settle_ms)
+    } else {
+        i64::MAX
+    }
+}
+
 /// The start of the epoch-aligned interval containing `observed_at_ms`. Euclidean division makes
 /// times before 1970 fall into the interval that starts at or before them, as for later times.
 pub fn bucket_start_ms(observed_at_ms: i64, interval_ms: i64) -> i64 {

@@ -177,7 +177,11 @@ pub trait Store: Send + Sync {
     /// taken to have crashed. An interval still open at `now_ms` (its end is later) is held back
     /// until `open_refresh_ms` have passed since it was first marked after its last computation,
     /// so that readings streaming into the current interval are computed about once per period
-    /// (0: never held back). The claim records `worker` and `now_ms`. On PostgreSQL the candidates
+    /// (0: never held back). An interval that has ended is held back until no reading has marked it
+    /// for `settle_ms` (`marked_at_ms <= now_ms - settle_ms`), so that a burst of batches re-marking
+    /// the same intervals is computed once it has passed rather than after every batch; but never
+    /// longer than `open_refresh_ms` after its first mark (0: never held back). The claim records
+    /// `worker` and `now_ms`. On PostgreSQL the candidates
     /// are locked with `FOR UPDATE SKIP LOCKED`, so concurrent claimers in several processes never
     /// receive the same bucket; on SQLite the claim is one `BEGIN IMMEDIATE` transaction, which
     /// serialises claimers.
@@ -188,6 +192,7 @@ pub trait Store: Send + Sync {
         limit: usize,
         stale_after_ms: i64,
         open_refresh_ms: i64,
+        settle_ms: i64,
     ) -> impl Future<Output = Result<Vec<ClaimedBucket>, StoreError>> + Send;
 
     /// The current revision of every reading of the quantity from the area's stations observed in
@@ -538,8 +543,9 @@ impl Store for AnyStore {
         limit: usize,
         stale_after_ms: i64,
         open_refresh_ms: i64,
+        settle_ms: i64,
     ) -> Result<Vec<ClaimedBucket>, StoreError> {
-        dispatch!(self, store => store.claim_buckets(worker, now_ms, limit, stale_after_ms, open_refresh_ms))
+        dispatch!(self, store => store.claim_buckets(worker, now_ms, limit, stale_after_ms, open_refresh_ms, settle_ms))
     }
 
     async fn load_interval(

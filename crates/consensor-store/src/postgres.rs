@@ -363,6 +363,7 @@ impl Store for PostgresStore {
         limit: usize,
         stale_after_ms: i64,
         open_refresh_ms: i64,
+        settle_ms: i64,
     ) -> Result<Vec<ClaimedBucket>, StoreError> {
         if limit == 0 {
             return Ok(Vec::new());
@@ -371,8 +372,8 @@ impl Store for PostgresStore {
             "WITH candidates AS MATERIALIZED ( \
                SELECT area_id, quantity_id, bucket_start_ms FROM pending_buckets pb \
                WHERE (claimed_at_ms IS NULL OR claimed_at_ms < $3) \
-               AND (bucket_start_ms + (SELECT interval_ms FROM areas WHERE id = pb.area_id) <= $2 \
-               OR first_marked_at_ms <= $5) \
+               AND ((bucket_start_ms + (SELECT interval_ms FROM areas WHERE id = pb.area_id) <= $2 \
+               AND marked_at_ms <= $6) OR first_marked_at_ms <= $5) \
                ORDER BY marked_at_ms / 60000, area_id, quantity_id, bucket_start_ms \
                LIMIT $4 FOR UPDATE OF pb SKIP LOCKED), \
              claimed AS ( \
@@ -392,6 +393,7 @@ impl Store for PostgresStore {
         .bind(now_ms.saturating_sub(stale_after_ms))
         .bind(i64::try_from(limit).unwrap_or(i64::MAX))
         .bind(now_ms.saturating_sub(open_refresh_ms))
+        .bind(crate::batch::settled_before(now_ms, settle_ms))
         .fetch_all(&self.pool)
         .await?;
         let mut claimed = Vec::with_capacity(rows.len());

@@ -18,7 +18,7 @@ use tokio::sync::oneshot;
 
 use crate::batch::{
     coalesce_following, distinct_sorted, insert_current, missing_keys, plan_batch, resolve,
-    with_retries, AttemptError, CurrentValue, Following, KeyIds, ResolvedReading,
+    settled_before, with_retries, AttemptError, CurrentValue, Following, KeyIds, ResolvedReading,
     CURRENT_VALUES_SELECT, MARK_FOLLOWING,
 };
 use crate::commit_group::{BatchAnswer, CommitQueue, WaitingBatch};
@@ -124,6 +124,7 @@ impl SqliteStore {
         limit: usize,
         stale_after_ms: i64,
         open_refresh_ms: i64,
+        settle_ms: i64,
     ) -> Result<Vec<ClaimedBucket>, sqlx::Error> {
         let mut tx = self.begin_immediate().await?;
         let rows = sqlx::query(
@@ -132,13 +133,15 @@ impl SqliteStore {
              FROM pending_buckets p JOIN areas a ON a.id = p.area_id \
              JOIN quantities q ON q.id = p.quantity_id \
              WHERE (p.claimed_at_ms IS NULL OR p.claimed_at_ms < $1) \
-             AND (p.bucket_start_ms + a.interval_ms <= $3 OR p.first_marked_at_ms <= $4) \
+             AND ((p.bucket_start_ms + a.interval_ms <= $3 AND p.marked_at_ms <= $5) \
+             OR p.first_marked_at_ms <= $4) \
              ORDER BY p.marked_at_ms / 60000, p.area_id, p.quantity_id, p.bucket_start_ms LIMIT $2",
         )
         .bind(now_ms.saturating_sub(stale_after_ms))
         .bind(i64::try_from(limit).unwrap_or(i64::MAX))
         .bind(now_ms)
         .bind(now_ms.saturating_sub(open_refresh_ms))
+        .bind(settled_before(now_ms, settle_ms))
         .fetch_all(&mut *tx)
         .await?;
         let mut row_ids = Vec::with_capacity(rows.len());
@@ -582,13 +585,21 @@ impl Store for SqliteStore {
         limit: usize,
         stale_after_ms: i64,
         open_refresh_ms: i64,
+        settle_ms: i64,
     ) -> Result<Vec<ClaimedBucket>, StoreError> {
         if limit == 0 {
             return Ok(Vec::new());
         }
         let _pass = self.write_pass(0).await;
         Ok(self
-            .try_claim_buckets(worker, now_ms, limit, stale_after_ms, open_refresh_ms)
+            .try_claim_buckets(
+                worker,
+                now_ms,
+                limit,
+                stale_after_ms,
+                open_refresh_ms,
+                settle_ms,
+            )
             .await?)
     }
 

@@ -126,6 +126,7 @@ on_both_backends!(
     oldest_pending_mark_gives_the_worker_lag,
     pool_status_counts_open_idle_and_max,
     open_intervals_wait_for_their_refresh_and_released_claims_return,
+    ended_intervals_wait_until_their_marks_settle,
     newest_observation_of_each_area_across_stations_and_quantities,
 );
 
@@ -994,7 +995,7 @@ async fn stored(store: &AnyStore, station: &str, quantity: &str, at_ms: i64) -> 
 /// Claims every pending bucket (as worker `w`) and indexes them by (area, quantity, start).
 async fn claim_all(store: &AnyStore, now_ms: i64) -> HashMap<(String, String, i64), ClaimedBucket> {
     store
-        .claim_buckets("w", now_ms, 1_000, STALE_MS, 0)
+        .claim_buckets("w", now_ms, 1_000, STALE_MS, 0, 0)
         .await
         .expect("claim")
         .into_iter()
@@ -1215,7 +1216,7 @@ async fn claim_then_store_result_removes_the_bucket(store: &AnyStore, _database:
         .expect("second batch");
 
     let first = store
-        .claim_buckets("w1", NOW_MS + 100, 1, STALE_MS, 0)
+        .claim_buckets("w1", NOW_MS + 100, 1, STALE_MS, 0, 0)
         .await
         .expect("claim");
     // Oldest mark first, and only as many as asked for.
@@ -1229,14 +1230,14 @@ async fn claim_then_store_result_removes_the_bucket(store: &AnyStore, _database:
     assert_eq!(bucket.claimed_by, "w1");
 
     let rest = store
-        .claim_buckets("w2", NOW_MS + 100, 10, STALE_MS, 0)
+        .claim_buckets("w2", NOW_MS + 100, 10, STALE_MS, 0, 0)
         .await
         .expect("claim the rest");
     // The first bucket's claim is fresh, so only the second bucket is left to claim.
     assert_eq!(rest.len(), 1);
     assert_eq!(rest[0].bucket_start_ms, BASE_MS + INTERVAL_MS);
     assert!(store
-        .claim_buckets("w3", NOW_MS + 100, 10, STALE_MS, 0)
+        .claim_buckets("w3", NOW_MS + 100, 10, STALE_MS, 0, 0)
         .await
         .expect("nothing left")
         .is_empty());
@@ -1274,7 +1275,7 @@ async fn bucket_marked_again_during_computation_stays_pending(
         .await
         .expect("batch");
     let claimed = store
-        .claim_buckets("w1", NOW_MS, 10, STALE_MS, 0)
+        .claim_buckets("w1", NOW_MS, 10, STALE_MS, 0, 0)
         .await
         .expect("claim");
     assert_eq!(claimed.len(), 1);
@@ -1296,7 +1297,7 @@ async fn bucket_marked_again_during_computation_stays_pending(
 
     // The claim was released, so it can be claimed again at once, well inside STALE_MS.
     let again = store
-        .claim_buckets("w2", NOW_MS + 3, 10, STALE_MS, 0)
+        .claim_buckets("w2", NOW_MS + 3, 10, STALE_MS, 0, 0)
         .await
         .expect("claim again");
     assert_eq!(again.len(), 1);
@@ -1325,7 +1326,7 @@ async fn a_batch_of_results_gives_each_interval_its_own_revision_records_and_val
     }
     store.insert_batch(&batch, NOW_MS).await.expect("batch");
     let claimed = store
-        .claim_buckets("w1", NOW_MS + 100, 10, STALE_MS, 0)
+        .claim_buckets("w1", NOW_MS + 100, 10, STALE_MS, 0, 0)
         .await
         .expect("claim");
     assert_eq!(claimed.len(), 3);
@@ -1393,7 +1394,7 @@ async fn a_batch_of_results_gives_each_interval_its_own_revision_records_and_val
     // Only the interval marked again is pending, and its claim was released at once.
     assert_eq!(store.count_pending_buckets().await.expect("pending"), 1);
     let again = store
-        .claim_buckets("w2", NOW_MS + 300, 10, STALE_MS, 0)
+        .claim_buckets("w2", NOW_MS + 300, 10, STALE_MS, 0, 0)
         .await
         .expect("claim again");
     assert_eq!(again.len(), 1);
@@ -1469,20 +1470,20 @@ async fn stale_claim_is_taken_over_and_fresh_one_is_not(
         .expect("batch");
     let claimed_at = NOW_MS + 1_000;
     let first = store
-        .claim_buckets("crashed", claimed_at, 10, STALE_MS, 0)
+        .claim_buckets("crashed", claimed_at, 10, STALE_MS, 0, 0)
         .await
         .expect("claim");
     assert_eq!(first.len(), 1);
     // A claim is stale when it is older than STALE_MS. At exactly STALE_MS it is not yet.
     for now_ms in [claimed_at + 1, claimed_at + STALE_MS] {
         let taken = store
-            .claim_buckets("rescuer", now_ms, 10, STALE_MS, 0)
+            .claim_buckets("rescuer", now_ms, 10, STALE_MS, 0, 0)
             .await
             .expect("claim");
         assert!(taken.is_empty(), "claim taken over at {now_ms}");
     }
     let taken = store
-        .claim_buckets("rescuer", claimed_at + STALE_MS + 1, 10, STALE_MS, 0)
+        .claim_buckets("rescuer", claimed_at + STALE_MS + 1, 10, STALE_MS, 0, 0)
         .await
         .expect("claim");
     assert_eq!(taken.len(), 1);
@@ -1523,7 +1524,7 @@ async fn concurrent_claimers_never_share_a_bucket(_store: &AnyStore, database: &
             let mut mine = Vec::new();
             loop {
                 let claimed = store
-                    .claim_buckets(worker, NOW_MS + 1, 7, STALE_MS, 0)
+                    .claim_buckets(worker, NOW_MS + 1, 7, STALE_MS, 0, 0)
                     .await
                     .expect("claim");
                 if claimed.is_empty() {
@@ -1682,7 +1683,7 @@ async fn result_revisions_grow_and_earlier_ones_stay_readable(
         .await
         .expect("batch");
     let bucket = store
-        .claim_buckets("w", NOW_MS, 1, STALE_MS, 0)
+        .claim_buckets("w", NOW_MS, 1, STALE_MS, 0, 0)
         .await
         .expect("claim")
         .remove(0);
@@ -2578,7 +2579,7 @@ async fn real_interval_decision_round_trip(store: &AnyStore, _database: &TestDat
     }
     store.insert_batch(&batch, NOW_MS).await.expect("batch");
     let bucket = store
-        .claim_buckets("w", NOW_MS, 10, STALE_MS, 0)
+        .claim_buckets("w", NOW_MS, 10, STALE_MS, 0, 0)
         .await
         .expect("claim")
         .remove(0);
@@ -2702,13 +2703,13 @@ async fn open_intervals_wait_for_their_refresh_and_released_claims_return(
         .await
         .expect("second batch");
     let early = store
-        .claim_buckets("w1", marked + 25_000, 10, STALE_MS, REFRESH_MS)
+        .claim_buckets("w1", marked + 25_000, 10, STALE_MS, REFRESH_MS, 0)
         .await
         .expect("early claim");
     let starts: Vec<i64> = early.iter().map(|bucket| bucket.bucket_start_ms).collect();
     assert_eq!(starts, [BASE_MS - INTERVAL_MS], "only the ended interval");
     let later = store
-        .claim_buckets("w1", marked + REFRESH_MS, 10, STALE_MS, REFRESH_MS)
+        .claim_buckets("w1", marked + REFRESH_MS, 10, STALE_MS, REFRESH_MS, 0)
         .await
         .expect("claim after the refresh");
     let starts: Vec<i64> = later.iter().map(|bucket| bucket.bucket_start_ms).collect();
@@ -2722,10 +2723,82 @@ async fn open_intervals_wait_for_their_refresh_and_released_claims_return(
     assert_eq!(store.release_claims("w1").await.expect("release"), 2);
     assert_eq!(store.release_claims("w1").await.expect("release again"), 0);
     let taken = store
-        .claim_buckets("w2", marked + REFRESH_MS + 1, 10, STALE_MS, REFRESH_MS)
+        .claim_buckets("w2", marked + REFRESH_MS + 1, 10, STALE_MS, REFRESH_MS, 0)
         .await
         .expect("claim released buckets");
     assert_eq!(taken.len(), 2);
+}
+
+/// The third claim policy of our own: an ended interval is claimed once no batch has marked it for
+/// `settle_ms`, but never later than `open_refresh_ms` after its first mark, however often it is
+/// marked again; with `settle_ms` 0 it is claimed at once.
+async fn ended_intervals_wait_until_their_marks_settle(store: &AnyStore, _database: &TestDatabase) {
+    network_of(store, 2).await;
+    const REFRESH_MS: i64 = 30_000;
+    const SETTLE_MS: i64 = 1_000;
+    // Both intervals before BASE have ended by the time of every batch below.
+    let (settling, busy) = (BASE_MS - INTERVAL_MS, BASE_MS - 2 * INTERVAL_MS);
+    let marked = BASE_MS + 60_000;
+    let mark = |station: &'static str, start: i64, offset_ms: i64, at_ms: i64| async move {
+        store
+            .insert_batch(
+                &[reading(station, "air_temperature", start + offset_ms, 13.0)],
+                at_ms,
+            )
+            .await
+            .expect("batch");
+    };
+    let claim = |now_ms: i64, settle_ms: i64| async move {
+        let claimed = store
+            .claim_buckets("w", now_ms, 10, STALE_MS, REFRESH_MS, settle_ms)
+            .await
+            .expect("claim");
+        let starts: Vec<i64> = claimed
+            .iter()
+            .map(|bucket| bucket.bucket_start_ms)
+            .collect();
+        assert_eq!(
+            store.release_claims("w").await.expect("release"),
+            starts.len() as u64
+        );
+        starts
+    };
+    mark("ST-1", settling, 0, marked).await;
+    assert_eq!(
+        claim(marked + 500, SETTLE_MS).await,
+        [] as [i64; 0],
+        "marked 0.5 s ago"
+    );
+    assert_eq!(claim(marked, 0).await, [settling], "no settling asked for");
+    // A second mark 0.9 s later restarts the wait.
+    mark("ST-2", settling, 0, marked + 900).await;
+    assert_eq!(
+        claim(marked + 1_500, SETTLE_MS).await,
+        [] as [i64; 0],
+        "re-marked 0.6 s ago"
+    );
+    assert_eq!(
+        claim(marked + 1_900, SETTLE_MS).await,
+        [settling],
+        "quiet for 1 s"
+    );
+
+    // An interval marked every 0.8 s (a new reading each time: a duplicate marks nothing) for
+    // longer than the refresh period is claimed once that
+    // period has passed since its first mark.
+    let first = marked + 2_000;
+    for (index, at_ms) in (first..first + REFRESH_MS).step_by(800).enumerate() {
+        let station = if index % 2 == 0 { "ST-1" } else { "ST-2" };
+        mark(station, busy, 1_000 * index as i64, at_ms).await;
+        if at_ms + 500 < first + REFRESH_MS {
+            assert!(
+                !claim(at_ms + 500, SETTLE_MS).await.contains(&busy),
+                "still being marked, {} ms after its first mark",
+                at_ms + 500 - first
+            );
+        }
+    }
+    assert!(claim(first + REFRESH_MS, SETTLE_MS).await.contains(&busy));
 }
 
 /// The overview's "newest reading" of an area: the latest observation of any of its stations in any

@@ -332,12 +332,14 @@ pub async fn load(
 const STEPPERS: usize = 2;
 
 /// The worker settings of stepper `index`: the configured ones under a name of its own, and
-/// computing the interval in progress at once too (the demo computes everything before it serves).
+/// computing the interval in progress and the ones just marked at once too (the demo computes
+/// everything before it serves).
 fn stepper_settings(state: &AppState, index: usize) -> WorkerSettings {
     let base = &state.config.worker;
     WorkerSettings {
         worker_id: format!("{}-demo-{index}", base.worker_id),
         open_interval_refresh: std::time::Duration::ZERO,
+        settle: std::time::Duration::ZERO,
         ..base.clone()
     }
 }

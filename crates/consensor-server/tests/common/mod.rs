@@ -201,6 +201,8 @@ impl TestServer {
 
 /// The server's state (no listener, no worker yet) on `database`, with the admin token and the
 /// default configuration plus `settings` (environment-style pairs); its clock starts at T0 + 1 h.
+/// The clock stands still unless a test moves it, so the worker computes an ended interval as soon
+/// as it is marked (`worker.settle_seconds = 0`; a test may set it again).
 pub async fn open_state(
     database: &TestDatabase,
     settings: &[(&str, &str)],
@@ -208,6 +210,7 @@ pub async fn open_state(
     let mut env: Vec<(String, String)> = vec![
         ("CONSENSOR_DATABASE_URL".into(), database.url.clone()),
         ("CONSENSOR_ADMIN_TOKEN".into(), ADMIN.into()),
+        ("CONSENSOR_WORKER__SETTLE_SECONDS".into(), "0".into()),
     ];
     env.extend(
         settings
