@@ -268,6 +268,12 @@ pub trait Store: Send + Sync {
         quantity: &str,
     ) -> impl Future<Output = Result<Option<ResultRow>, StoreError>> + Send;
 
+    /// [`Store::latest`] of every area and quantity that has a result, as (area key, quantity
+    /// key, result), ordered by area key and quantity key: one query for the overview.
+    fn latest_of_every_area(
+        &self,
+    ) -> impl Future<Output = Result<Vec<(String, String, ResultRow)>, StoreError>> + Send;
+
     /// One interval's result: revision `revision`, or the latest when it is `None`.
     fn result_revision(
         &self,
@@ -603,6 +609,10 @@ impl Store for AnyStore {
 
     async fn latest(&self, area: &str, quantity: &str) -> Result<Option<ResultRow>, StoreError> {
         dispatch!(self, store => store.latest(area, quantity))
+    }
+
+    async fn latest_of_every_area(&self) -> Result<Vec<(String, String, ResultRow)>, StoreError> {
+        dispatch!(self, store => store.latest_of_every_area())
     }
 
     async fn result_revision(

@@ -1833,6 +1833,74 @@ async fn series_latest_and_result_revision(store: &AnyStore, _database: &TestDat
         .await
         .expect("latest")
         .is_none());
+
+    // The overview's one query: the same newest result of every area and quantity as `latest`.
+    store
+        .upsert_area(&NewArea {
+            key: "east-rise".to_owned(),
+            name: "East rise".to_owned(),
+            interval_ms: INTERVAL_MS,
+        })
+        .await
+        .expect("area");
+    store
+        .upsert_station(&station("ST-9", "east-rise"))
+        .await
+        .expect("station");
+    let more = [
+        reading("ST-9", "air_temperature", BASE_MS, 30.0),
+        reading("ST-1", "relative_humidity", BASE_MS + INTERVAL_MS, 55.0),
+    ];
+    store.insert_batch(&more, NOW_MS).await.expect("batch");
+    let ids = station_ids(store).await;
+    for ((area, quantity, start), bucket) in claim_all(store, NOW_MS).await {
+        let station = if area == "east-rise" { "ST-9" } else { "ST-1" };
+        let median = if quantity == "relative_humidity" {
+            55.0
+        } else {
+            30.0
+        };
+        let decided = outcome(point(Some(median), 1, 0), Vec::new(), Vec::new());
+        assert!(start == BASE_MS || start == BASE_MS + INTERVAL_MS);
+        store_outcome(store, &bucket, &decided, &[ids[station]], NOW_MS).await;
+    }
+    let every = store.latest_of_every_area().await.expect("every latest");
+    let summary: Vec<(&str, &str, i64, i64, Option<f64>)> = every
+        .iter()
+        .map(|(area, quantity, row)| {
+            (
+                area.as_str(),
+                quantity.as_str(),
+                row.start_ms,
+                row.revision,
+                row.point.median,
+            )
+        })
+        .collect();
+    assert_eq!(
+        summary,
+        vec![
+            ("east-rise", "air_temperature", BASE_MS, 1, Some(30.0)),
+            (
+                "north-basin",
+                "air_temperature",
+                BASE_MS + 2 * INTERVAL_MS,
+                1,
+                Some(12.0)
+            ),
+            (
+                "north-basin",
+                "relative_humidity",
+                BASE_MS + INTERVAL_MS,
+                1,
+                Some(55.0)
+            ),
+        ]
+    );
+    for (area, quantity, row) in &every {
+        let one = store.latest(area, quantity).await.expect("latest");
+        assert_eq!(one.as_ref(), Some(row), "{area} {quantity}");
+    }
 }
 
 /// The set-aside listing's fixture: area north-basin (ST-1, ST-2) and area south (ST-3), readings

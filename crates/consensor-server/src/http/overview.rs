@@ -22,7 +22,7 @@ use std::collections::BTreeMap;
 use axum::extract::State;
 use axum::routing::get;
 use axum::{Json, Router};
-use consensor_store::Store;
+use consensor_store::{ResultRow, Store};
 use serde::Serialize;
 
 use super::results::{interval_name, PointOut};
@@ -87,15 +87,21 @@ async fn overview(
         .iter()
         .map(|(area, newest)| (area.as_str(), *newest))
         .collect();
+    // The newest result of every area and quantity, also in one query.
+    let newest_results = state.store.latest_of_every_area().await?;
+    let latest: BTreeMap<(&str, &str), &ResultRow> = newest_results
+        .iter()
+        .map(|(area, quantity, row)| ((area.as_str(), quantity.as_str()), row))
+        .collect();
     let mut summaries = Vec::with_capacity(areas.len());
     for area in &areas {
         let mut quantities = Vec::new();
         for quantity in &state.config.quantities {
-            if let Some(row) = state.store.latest(&area.key, &quantity.key).await? {
+            if let Some(row) = latest.get(&(area.key.as_str(), quantity.key.as_str())) {
                 quantities.push(QuantitySummary {
                     quantity: quantity.key.clone(),
                     unit: quantity.unit.clone(),
-                    latest: PointOut::from(&row),
+                    latest: PointOut::from(*row),
                 });
             }
         }
