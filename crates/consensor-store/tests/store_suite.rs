@@ -263,6 +263,22 @@ async fn network(store: &AnyStore) {
     }
 }
 
+/// A second area, east-rise, with one station, ST-9.
+async fn east_rise_with_st9(store: &AnyStore) {
+    store
+        .upsert_area(&NewArea {
+            key: "east-rise".to_owned(),
+            name: "East rise".to_owned(),
+            interval_ms: INTERVAL_MS,
+        })
+        .await
+        .expect("area");
+    store
+        .upsert_station(&station("ST-9", "east-rise"))
+        .await
+        .expect("station");
+}
+
 fn station(key: &str, area: &str) -> NewStation {
     NewStation {
         key: key.to_owned(),
@@ -1835,18 +1851,7 @@ async fn series_latest_and_result_revision(store: &AnyStore, _database: &TestDat
         .is_none());
 
     // The overview's one query: the same newest result of every area and quantity as `latest`.
-    store
-        .upsert_area(&NewArea {
-            key: "east-rise".to_owned(),
-            name: "East rise".to_owned(),
-            interval_ms: INTERVAL_MS,
-        })
-        .await
-        .expect("area");
-    store
-        .upsert_station(&station("ST-9", "east-rise"))
-        .await
-        .expect("station");
+    east_rise_with_st9(store).await;
     let more = [
         reading("ST-9", "air_temperature", BASE_MS, 30.0),
         reading("ST-1", "relative_humidity", BASE_MS + INTERVAL_MS, 55.0),
@@ -2876,18 +2881,7 @@ async fn newest_observation_of_each_area_across_stations_and_quantities(
     _database: &TestDatabase,
 ) {
     network(store).await;
-    store
-        .upsert_area(&NewArea {
-            key: "east-rise".to_owned(),
-            name: "East rise".to_owned(),
-            interval_ms: INTERVAL_MS,
-        })
-        .await
-        .expect("area");
-    store
-        .upsert_station(&station("ST-9", "east-rise"))
-        .await
-        .expect("station");
+    east_rise_with_st9(store).await;
     store
         .upsert_area(&NewArea {
             key: "quiet-fen".to_owned(),
