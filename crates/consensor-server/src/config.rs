@@ -420,10 +420,8 @@ fn seconds_or_zero(name: &str, value: f64) -> anyhow::Result<Duration> {
     if value == 0.0 {
         return Ok(Duration::ZERO);
     }
-    if !(value > 0.0 && value.is_finite() && value < 1e9) {
-        bail!("{name}: {value} must be 0 or a positive number of seconds");
-    }
-    Ok(Duration::from_secs_f64(value))
+    seconds(name, value)
+        .map_err(|_| anyhow::anyhow!("{name}: {value} must be 0 or a positive number of seconds"))
 }
 
 impl RawConfig {

@@ -53,7 +53,8 @@ impl Default for WorkerSettings {
             // (BENCHMARKS.md, "live": 21-28 % of one core for 10,000 stations).
             open_interval_refresh: Duration::from_secs(30),
             // Our own choice: dashboards see an ended interval about a second after its last
-            // reading, and an outage burst is stored about 10 % faster (BENCHMARKS.md, "Load").
+            // reading, and an outage burst was stored 4-13 % faster in alternating runs
+            // (BENCHMARKS.md, "Load").
             settle: Duration::from_secs(1),
         }
     }

@@ -427,8 +427,9 @@ macro_rules! result_queries {
             /// [`latest`] of every area and quantity that has a result, in one query: each
             /// pair's newest interval is one backward probe of `interval_latest`'s primary key,
             /// written as a scalar subquery so that neither planner scans that table (a join
-            /// with a `MAX` subquery made SQLite scan every row of it). With 2 million results
-            /// on PostgreSQL, 200 areas x 10 quantities took 20 ms (`EXPLAIN ANALYZE`).
+            /// with a `MAX` subquery made SQLite scan every row of it; the plans were read with
+            /// `EXPLAIN QUERY PLAN`, and on PostgreSQL with `EXPLAIN ANALYZE` on 2 million
+            /// results: one backward index probe per pair).
             pub(crate) async fn latest_of_every_area(
                 pool: &Pool<$database>,
             ) -> Result<Vec<(String, String, ResultRow)>, StoreError> {

@@ -674,7 +674,7 @@ fn judge_readings(
             }
             if !met {
                 fresh.judge(judging, reading);
-                met = fresh.has_caught_up_with(lead, block_start);
+                met = fresh.has_caught_up_with(lead);
             }
             next += 1;
         }
@@ -717,17 +717,13 @@ impl Chain {
         self.previous_time = i64::MIN;
     }
 
-    /// Whether this chain, started at `started_ms`, now holds the same state as `lead`, which
-    /// started earlier and has judged the same readings since `started_ms`: then both judge every
-    /// later reading alike.
-    fn has_caught_up_with(&self, lead: &Chain, started_ms: i64) -> bool {
+    /// Whether this chain, started later than `lead` and fed the same readings since, now holds
+    /// the same state: then both judge every later reading alike. The windows differ in length
+    /// (a cheap comparison) until the lead's has dropped every reading from before this chain's
+    /// start.
+    fn has_caught_up_with(&self, lead: &Chain) -> bool {
         self.previous_accepted == lead.previous_accepted
             && self.previous_in_range == lead.previous_in_range
-            && lead
-                .window
-                .members
-                .front()
-                .is_none_or(|&(time, _)| time >= started_ms)
             && self.window == lead.window
     }
 
