@@ -4,7 +4,7 @@
 # random loopback port, drives it with 1,000 simulated stations, dashboards and an outage burst, and
 # verifies afterwards that every acknowledged reading is stored exactly once.
 #
-# Usage: tools/load/run.sh [--quick] [--seconds N]
+# Usage: tools/load/run.sh [--quick] [--seconds N] [--burst-batch N]
 # Environment: CARGO_TARGET_DIR (where to build; default target/), CONSENSOR_BIN (a server binary
 # to use instead of the one built here).
 set -euo pipefail

@@ -5,7 +5,8 @@
 //! by reading, with what the server acknowledged: every reading answered 200 must be stored exactly
 //! once.
 //!
-//! `consensor-bench load [--quick] [--seconds N]`; `tools/load/run.sh` builds release and runs it.
+//! `consensor-bench load [--quick] [--seconds N] [--burst-batch N]`; `tools/load/run.sh` builds
+//! release and runs it.
 //! The server binary is `consensor` next to this one (same target directory) or `CONSENSOR_BIN`.
 //!
 //! Phases (the clock is the real one; readings are stamped with the second they stand for):
@@ -14,7 +15,8 @@
 //! 2. `single`: every station posts its own reading once a second as a one-reading request, through
 //!    a pool of 64 concurrent connections, for N / 4 seconds (at least 5).
 //! 3. `burst`: every gateway resends its stations' last ten minutes (600 readings per station) in
-//!    batches of 5,000, all gateways at once, while live batched posting goes on.
+//!    batches of 5,000 (`--burst-batch N` for another size), all gateways at once, while live
+//!    batched posting goes on.
 //! 4. `drain`: live batched posting goes on until the worker is back to the intervals in progress
 //!    (pending intervals at most the number of areas) plus 5 s, or for at most 90 s.
 //!
@@ -43,6 +45,9 @@ const GATEWAYS: usize = 10;
 const STATIONS_PER_GATEWAY: usize = STATIONS / GATEWAYS;
 const BACKLOG_SECONDS: i64 = 600;
 const BURST_BATCH: usize = 5_000;
+/// The sizes `--burst-batch` accepts: from a live batch's size to what fits the server's default
+/// body limit.
+const BURST_BATCH_RANGE: std::ops::RangeInclusive<usize> = 100..=50_000;
 /// How long after the next whole second the burst starts: time to build the backlog bodies.
 const BURST_LEAD: Duration = Duration::from_secs(3);
 const DASHBOARDS: usize = 4;
@@ -55,6 +60,8 @@ const QUANTITY: &str = "air_temperature";
 pub struct Options {
     pub quick: bool,
     pub seconds: u64,
+    /// Readings per backlog batch in the burst.
+    pub burst_batch: usize,
 }
 
 impl Options {
@@ -73,7 +80,28 @@ impl Options {
                     format!("--seconds: {text:?} is not a whole number from 5 to 3600")
                 })?;
         }
-        Ok(Options { quick, seconds })
+        let mut burst_batch = BURST_BATCH;
+        if let Some(position) = args.iter().position(|a| a == "--burst-batch") {
+            let text = args
+                .get(position + 1)
+                .context("--burst-batch needs a number of readings")?;
+            burst_batch = text
+                .parse()
+                .ok()
+                .filter(|n| BURST_BATCH_RANGE.contains(n))
+                .with_context(|| {
+                    format!(
+                        "--burst-batch: {text:?} is not a whole number from {} to {}",
+                        BURST_BATCH_RANGE.start(),
+                        BURST_BATCH_RANGE.end()
+                    )
+                })?;
+        }
+        Ok(Options {
+            quick,
+            seconds,
+            burst_batch,
+        })
     }
 }
 
@@ -100,7 +128,7 @@ pub async fn run(options: Options) -> anyhow::Result<()> {
         options.seconds,
         single_seconds,
         BACKLOG_SECONDS,
-        BURST_BATCH,
+        options.burst_batch,
         DRAIN_LIMIT.as_secs(),
         DASHBOARDS,
         DASHBOARD_PERIOD.as_millis()
@@ -299,7 +327,7 @@ impl Kind {
         match self {
             Kind::LiveBatch => "ingest, live batch of 100",
             Kind::Single => "ingest, single reading",
-            Kind::Backlog => "ingest, backlog batch of 5000",
+            Kind::Backlog => "ingest, backlog batch",
             Kind::Series => "dashboard GET series",
             Kind::Latest => "dashboard GET latest",
         }
@@ -604,7 +632,7 @@ async fn drive(server: &Server, options: &Options, single_seconds: u64) -> anyho
         }
         burst_readings += keys.len();
         backlog_bodies.push(
-            keys.chunks(BURST_BATCH)
+            keys.chunks(options.burst_batch)
                 .map(|chunk| (batch_body(chunk), chunk.to_vec()))
                 .collect(),
         );
@@ -1178,7 +1206,7 @@ fn report(
     };
     let burst = PHASES.iter().position(|p| *p == "burst").unwrap_or(2) as u8;
     println!(
-        "  p99 < 250 ms, batched ingest: {} ({:.1} ms over all batches; live batches outside the burst {:.1} ms, during it {:.1} ms; backlog batches of 5000 {:.1} ms)",
+        "  p99 < 250 ms, batched ingest: {} ({:.1} ms over all batches; live batches outside the burst {:.1} ms, during it {:.1} ms; backlog batches {:.1} ms)",
         met(ingest_batches.p99_ms < 250.0),
         ingest_batches.p99_ms,
         p99_of(&|s| s.kind == Kind::LiveBatch && s.phase != burst),
