@@ -1,33 +1,40 @@
-//! Group commit of small SQLite batches.
+//! The queue of batches waiting for SQLite's writer thread, and which of them go together.
 //!
 //! With `synchronous=FULL` every commit waits until the WAL is on disk. A station that posts one
 //! reading per request pays one such flush per reading, and the load test measured one process
 //! committing about 900 one-reading requests a second while 1,000 stations each posted once a
 //! second, so the queue (and every answer's latency) grew without end (BENCHMARKS.md, "Load").
-//! Small batches therefore wait here while the write lock is in other hands: the first to arrive
-//! starts one turn at the lock, those arriving before it is taken join it, and the turn stores them
-//! all in one transaction with one flush (at most one turn is on its way at a time, so waiting
-//! batches cost no turns of their own at the lock). Each
-//! batch is classified as if stored alone, one after the other in arrival order (a key sent by two
-//! batches of one group is a duplicate or a revision in the second, as it would be across two
-//! transactions), gets its own outcome or its own refusal, and is answered only after the commit,
-//! so a 200 still means "on disk".
+//! Every batch therefore waits here, and the writer thread (`sqlite_write.rs`) stores the batches
+//! waiting when it takes its turn at the write lock in one transaction with one flush: first the
+//! small ones (at most [`LARGE_WRITE_ROWS`] readings each) in arrival order, up to [`SMALL_ROWS`]
+//! readings, so that a live batch waits for one turn in hand and rarely more, then the oldest large
+//! one and the next large ones in arrival order while the turn stays within [`TURN_ROWS`] readings. Each batch is classified as if stored alone, one
+//! after the other in the turn's order (a key sent by two batches of one turn is a duplicate or a
+//! revision in the second, as it would be across two transactions), gets its own outcome or its
+//! own refusal, and is answered only after the commit, so a 200 still means "on disk".
 
+use std::collections::VecDeque;
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::Mutex;
+use std::sync::{Condvar, Mutex};
 
 use tokio::sync::oneshot;
 
+use crate::write_gate::LARGE_WRITE_ROWS;
 use crate::{BatchOutcome, NewReading, StoreError};
 
 /// What a stored batch answers.
 pub(crate) type BatchAnswer = Result<BatchOutcome, StoreError>;
 
-/// At most this many readings are stored in one group, so that a group holds the write lock about
-/// as long as one large batch does (`write_gate.rs`) and a writer queued behind it waits no longer.
-const GROUP_ROWS: usize = 5_000;
+/// Small batches of at most this many readings in all go in one turn (at least one batch).
+const SMALL_ROWS: usize = 5_000;
 
-/// A small batch waiting for its group.
+/// Large batches join a turn while it holds at most this many readings (the oldest large batch
+/// always joins, so a turn can hold more). Two
+/// backlog batches of 5,000 share one flush to disk; a live batch arriving meanwhile waits for
+/// that one turn (BENCHMARKS.md, "Load", measures the choice).
+pub(crate) const TURN_ROWS: usize = 5_000;
+
+/// A batch waiting for its turn.
 #[derive(Debug)]
 pub(crate) struct WaitingBatch {
     pub readings: Vec<NewReading>,
@@ -35,19 +42,19 @@ pub(crate) struct WaitingBatch {
     pub answer: oneshot::Sender<BatchAnswer>,
 }
 
-/// The batches waiting, oldest first, and whether a turn at the write lock is on its way for them.
+/// The batches waiting, oldest first; the writer thread sleeps on `arrived` while there are none.
 #[derive(Debug, Default)]
 pub(crate) struct CommitQueue {
     state: Mutex<Waiting>,
-    groups: AtomicU64,
+    arrived: Condvar,
+    turns: AtomicU64,
 }
 
 #[derive(Debug, Default)]
 struct Waiting {
-    batches: Vec<WaitingBatch>,
-    /// A turn has been started that has not taken its group yet: batches pushed meanwhile go with
-    /// it, and need no turn of their own.
-    turn_started: bool,
+    batches: VecDeque<WaitingBatch>,
+    /// The store is closing: nothing more is queued, and the writer stops once the queue is empty.
+    closed: bool,
 }
 
 impl CommitQueue {
@@ -57,35 +64,75 @@ impl CommitQueue {
             .unwrap_or_else(|poisoned| poisoned.into_inner())
     }
 
-    /// Queues `batch`; true when the caller must start a turn for it (none is on its way).
-    pub(crate) fn push(&self, batch: WaitingBatch) -> bool {
+    /// Queues `batch` for the writer; gives it back when the store is closing.
+    pub(crate) fn push(&self, batch: WaitingBatch) -> Result<(), WaitingBatch> {
         let mut waiting = self.lock();
-        waiting.batches.push(batch);
-        !std::mem::replace(&mut waiting.turn_started, true)
+        if waiting.closed {
+            return Err(batch);
+        }
+        waiting.batches.push_back(batch);
+        self.arrived.notify_one();
+        Ok(())
     }
 
-    /// Takes the oldest waiting batches, up to [`GROUP_ROWS`] readings (always at least one batch
-    /// when any waits); the rest wait for the next group. The flag is true when batches are left,
-    /// and the caller must then start the turn that takes them.
-    pub(crate) fn take_group(&self) -> (Vec<WaitingBatch>, bool) {
+    /// Blocks until a batch waits (true) or the store is closing with none left (false).
+    pub(crate) fn wait_for_batches(&self) -> bool {
         let mut waiting = self.lock();
-        let mut rows = 0;
-        let count = waiting
-            .batches
-            .iter()
-            .take_while(|batch| {
-                rows += batch.readings.len();
-                rows <= GROUP_ROWS
-            })
-            .count()
-            .max(1)
-            .min(waiting.batches.len());
-        if count > 0 {
-            self.groups.fetch_add(1, Ordering::Relaxed);
+        loop {
+            if !waiting.batches.is_empty() {
+                return true;
+            }
+            if waiting.closed {
+                return false;
+            }
+            waiting = self
+                .arrived
+                .wait(waiting)
+                .unwrap_or_else(|poisoned| poisoned.into_inner());
         }
-        let group = waiting.batches.drain(..count).collect();
-        waiting.turn_started = !waiting.batches.is_empty();
-        (group, waiting.turn_started)
+    }
+
+    /// Stops taking batches; the writer stores those already queued and then ends.
+    pub(crate) fn close(&self) {
+        self.lock().closed = true;
+        self.arrived.notify_all();
+    }
+
+    /// Takes one turn's batches (see the module's text); the others keep their places. `after_large`
+    /// says whether the turn before took large batches.
+    pub(crate) fn take_turn(&self, after_large: bool) -> Vec<WaitingBatch> {
+        let mut waiting = self.lock();
+        let is_small = |batch: &WaitingBatch| batch.readings.len() <= LARGE_WRITE_ROWS;
+        let small_waits = waiting.batches.iter().any(is_small);
+        let large_waits = waiting.batches.iter().any(|batch| !is_small(batch));
+        let (small, limit) = if small_waits && (after_large || !large_waits) {
+            (true, SMALL_ROWS)
+        } else {
+            (false, TURN_ROWS)
+        };
+        let mut rows = 0;
+        let mut turn = Vec::new();
+        let mut kept = VecDeque::with_capacity(waiting.batches.len());
+        let mut full = false;
+        for batch in waiting.batches.drain(..) {
+            let size = batch.readings.len();
+            // Batches of the turn's kind in arrival order while the turn has room (the first
+            // always goes); one that does not fit ends the turn, so none is overtaken for ever.
+            if is_small(&batch) == small {
+                full = full || (rows > 0 && rows + size > limit);
+            }
+            if is_small(&batch) == small && !full {
+                rows += size;
+                turn.push(batch);
+            } else {
+                kept.push_back(batch);
+            }
+        }
+        waiting.batches = kept;
+        if !turn.is_empty() {
+            self.turns.fetch_add(1, Ordering::Relaxed);
+        }
+        turn
     }
 
     /// How many batches are waiting.
@@ -94,10 +141,10 @@ impl CommitQueue {
         self.lock().batches.len()
     }
 
-    /// How many groups have been taken since the store was opened.
+    /// How many turns have been taken since the store was opened.
     #[cfg(test)]
-    pub(crate) fn groups_taken(&self) -> u64 {
-        self.groups.load(Ordering::Relaxed)
+    pub(crate) fn turns_taken(&self) -> u64 {
+        self.turns.load(Ordering::Relaxed)
     }
 }
 
@@ -123,41 +170,75 @@ mod tests {
         (batch, answered)
     }
 
-    #[test]
-    fn a_group_takes_the_oldest_batches_up_to_its_row_limit() {
-        let queue = CommitQueue::default();
-        let mut receivers = Vec::new();
-        let mut turns = Vec::new();
-        for readings in [1_000, 1_000, 2_000, 1_000, 1] {
-            let (batch, answered) = waiting(readings);
-            receivers.push(answered);
-            turns.push(queue.push(batch));
-        }
-        // Only the first batch starts a turn; the others go with it.
-        assert_eq!(turns, vec![true, false, false, false, false]);
-        // 1,000 + 1,000 + 2,000 + 1,000 = 5,000 readings fit in one group; the last batch waits,
-        // so the turn that took the group must start another.
-        let sizes = |(group, _): (Vec<WaitingBatch>, bool)| -> Vec<usize> {
-            group.iter().map(|batch| batch.readings.len()).collect()
-        };
-        let first = queue.take_group();
-        assert!(first.1, "a batch is left: another turn is needed");
-        assert_eq!(sizes(first), vec![1_000, 1_000, 2_000, 1_000]);
-        let second = queue.take_group();
-        assert!(!second.1, "nothing is left");
-        assert_eq!(sizes(second), vec![1]);
-        assert!(queue.take_group().0.is_empty());
-        assert_eq!(queue.groups_taken(), 2);
-        // With no turn on its way, the next batch starts one again.
-        let (batch, _answered) = waiting(1);
-        assert!(queue.push(batch));
+    fn sizes(turn: &[WaitingBatch]) -> Vec<usize> {
+        turn.iter().map(|batch| batch.readings.len()).collect()
     }
 
     #[test]
-    fn a_batch_larger_than_a_group_is_still_taken_alone() {
+    fn turns_alternate_between_small_and_large_batches_each_in_arrival_order() {
         let queue = CommitQueue::default();
-        let (batch, _answered) = waiting(GROUP_ROWS + 1);
-        queue.push(batch);
-        assert_eq!(queue.take_group().0.len(), 1);
+        let mut receivers = Vec::new();
+        for readings in [5_000, 100, 3_000, 5_000, 1, 4_000, 1_000] {
+            let (batch, answered) = waiting(readings);
+            receivers.push(answered);
+            queue.push(batch).expect("open");
+        }
+        // After a small turn (or at the start), large batches: the first always goes, the next
+        // only while the turn stays within TURN_ROWS; one that does not fit ends the turn, so the
+        // 4,000 does not overtake the 5,000 before it.
+        let large = queue.take_turn(false);
+        let expected_large: Vec<usize> = if TURN_ROWS >= 8_000 {
+            vec![5_000, 3_000]
+        } else {
+            vec![5_000]
+        };
+        assert_eq!(sizes(&large), expected_large);
+        // After a large turn, the small batches waiting (100, 1 and 1,000 readings) go together.
+        assert_eq!(sizes(&queue.take_turn(true)), vec![100, 1, 1_000]);
+        // With no small batch waiting, large ones go even right after a large turn.
+        let rest: Vec<usize> = std::iter::from_fn(|| {
+            let turn = queue.take_turn(true);
+            (!turn.is_empty()).then(|| sizes(&turn))
+        })
+        .flatten()
+        .collect();
+        let mut expected_rest = vec![3_000, 5_000, 4_000];
+        expected_rest.retain(|size| !expected_large[1..].contains(size));
+        assert_eq!(rest, expected_rest);
+        // Small batches beyond SMALL_ROWS readings wait for the next small turn.
+        for _ in 0..6 {
+            let (batch, answered) = waiting(1_000);
+            receivers.push(answered);
+            queue.push(batch).expect("open");
+        }
+        assert_eq!(queue.take_turn(true).len(), SMALL_ROWS / 1_000);
+        assert_eq!(queue.take_turn(true).len(), 6 - SMALL_ROWS / 1_000);
+        assert_eq!(queue.waiting(), 0);
+    }
+
+    #[test]
+    fn a_batch_larger_than_a_turn_is_still_taken_alone() {
+        let queue = CommitQueue::default();
+        for _ in 0..2 {
+            let (batch, _answered) = waiting(TURN_ROWS + 1);
+            queue.push(batch).expect("open");
+        }
+        assert_eq!(queue.take_turn(false).len(), 1);
+        assert_eq!(queue.take_turn(false).len(), 1);
+        assert_eq!(queue.turns_taken(), 2);
+    }
+
+    #[test]
+    fn a_closed_queue_refuses_batches_and_ends_once_empty() {
+        let queue = CommitQueue::default();
+        let (batch, _answered) = waiting(1);
+        queue.push(batch).expect("open");
+        queue.close();
+        let (batch, _answered) = waiting(1);
+        assert!(queue.push(batch).is_err());
+        // The batch queued before closing is still stored.
+        assert!(queue.wait_for_batches());
+        assert_eq!(queue.take_turn(false).len(), 1);
+        assert!(!queue.wait_for_batches());
     }
 }

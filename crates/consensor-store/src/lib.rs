@@ -57,6 +57,7 @@ mod results_sql;
 mod sql;
 mod sqlite;
 mod sqlite_read;
+mod sqlite_write;
 #[cfg(feature = "testing")]
 pub mod testing;
 mod write_gate;

@@ -3,26 +3,22 @@
 //! Every connection runs in WAL mode with `synchronous=FULL`, so a transaction that has committed is
 //! on disk (the WAL is synced at each commit) and survives both a killed process and a power loss.
 //! Writing transactions start with `BEGIN IMMEDIATE`: they take the write lock before reading, so a
-//! batch never reads current values that another writer changes before it commits. Small batches
-//! that arrive while another write is in hand are stored together, one commit for all
-//! (`commit_group.rs`).
+//! batch never reads current values that another writer changes before it commits. Batches of
+//! readings are stored by one writer thread with a connection of its own (`sqlite_write.rs`); the
+//! small ones that arrive while another write is in hand are stored together, one commit for all
+//! (`commit_group.rs`). Everything else goes through the sqlx pool. A database that lives only in
+//! memory is refused: the writer and the worker's reader open the file a second time.
 
-use std::collections::{BTreeSet, HashMap};
+use std::collections::HashMap;
 use std::str::FromStr;
 
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
 };
 use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
-use tokio::sync::oneshot;
 
-use crate::batch::{
-    coalesce_following, distinct_sorted, insert_current, missing_keys, plan_batch, resolve,
-    settled_before, with_retries, AttemptError, CurrentValue, Following, KeyIds, ResolvedReading,
-    CURRENT_VALUES_SELECT, MARK_FOLLOWING,
-};
-use crate::commit_group::{BatchAnswer, CommitQueue, WaitingBatch};
-use crate::write_gate::LARGE_WRITE_ROWS;
+use crate::batch::{distinct_sorted, settled_before};
+use crate::sqlite_write::{database_file, url_is_read_only, DirectWriter};
 use crate::{
     Area, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken, ReadingKey,
     Station, StationRef, Store, StoreError, StoreOptions, StoredReading, Token, Upserted,
@@ -41,14 +37,12 @@ crate::results_sql::result_queries!(sqlx::Sqlite, sqlx::SqliteConnection);
 #[derive(Debug, Clone)]
 pub struct SqliteStore {
     pool: SqlitePool,
-    /// The worker's bulk read (`None` for an in-memory database).
-    direct: Option<std::sync::Arc<crate::sqlite_read::DirectReader>>,
+    /// The worker's bulk read (`sqlite_read.rs`).
+    direct: std::sync::Arc<crate::sqlite_read::DirectReader>,
     /// The order of this process's big writers (`write_gate.rs`).
     gate: std::sync::Arc<crate::write_gate::WriteGate>,
-    /// Small batches waiting to be stored together (`commit_group.rs`).
-    queue: std::sync::Arc<CommitQueue>,
-    /// The rules' history block, for the intervals a stored reading reaches (`batch::Following`).
-    history_ms: i64,
+    /// The connection batches of readings are written through (`sqlite_write.rs`).
+    writer: std::sync::Arc<DirectWriter>,
 }
 
 impl SqliteStore {
@@ -61,10 +55,14 @@ impl SqliteStore {
             .synchronous(SqliteSynchronous::Full)
             .busy_timeout(options.sqlite_busy_timeout)
             .foreign_keys(true);
-        let direct = crate::sqlite_read::DirectReader::for_file(
-            connect_options.get_filename(),
-            options.sqlite_busy_timeout,
-        );
+        let Some(file) = database_file(url, connect_options.get_filename()) else {
+            return Err(StoreError::Other(format!(
+                "{url}: an in-memory SQLite database cannot be used; Consensor keeps every \
+                 reading, so give the path of a database file"
+            )));
+        };
+        let gate = std::sync::Arc::new(crate::write_gate::WriteGate::default());
+        let direct = crate::sqlite_read::DirectReader::for_file(&file, options.sqlite_busy_timeout);
         let pool = SqlitePoolOptions::new()
             .max_connections(options.max_connections)
             .acquire_timeout(options.acquire_timeout)
@@ -83,12 +81,19 @@ impl SqliteStore {
             .connect_with(connect_options)
             .await?;
         MIGRATOR.run(&pool).await?;
+        // Started after the migrations: the writer's connection opens an existing, current file.
+        let writer = std::sync::Arc::new(DirectWriter::start(
+            &file,
+            url_is_read_only(url),
+            options.sqlite_busy_timeout,
+            options.history_ms,
+            std::sync::Arc::clone(&gate),
+        )?);
         Ok(SqliteStore {
             pool,
             direct,
-            gate: Default::default(),
-            queue: Default::default(),
-            history_ms: options.history_ms,
+            writer,
+            gate,
         })
     }
 
@@ -177,207 +182,6 @@ impl SqliteStore {
         tx.commit().await?;
         Ok(claimed)
     }
-
-    /// Stores a batch of at most [`LARGE_WRITE_ROWS`] readings with the others waiting then
-    /// (`commit_group.rs`).
-    async fn insert_grouped(&self, readings: &[NewReading], now_ms: i64) -> BatchAnswer {
-        let (answer, answered) = oneshot::channel();
-        let start_turn = self.queue.push(WaitingBatch {
-            readings: readings.to_vec(),
-            now_ms,
-            answer,
-        });
-        if start_turn {
-            self.start_turn();
-        }
-        answered.await.unwrap_or_else(|_| {
-            Err(StoreError::Other(
-                "the batch's group commit ended without an answer".to_owned(),
-            ))
-        })
-    }
-
-    /// Starts a turn at the write lock for the batches waiting. It runs as a task of its own: a
-    /// request that its client gives up on is dropped at its next await, and must not take the
-    /// batches of the others down with it.
-    fn start_turn(&self) {
-        let store = self.clone();
-        tokio::spawn(async move { store.commit_waiting().await });
-    }
-
-    /// Waits for a turn at the write lock, then stores the batches waiting then (starting the next
-    /// turn first if some must wait for another group).
-    async fn commit_waiting(&self) {
-        let _pass = self.write_pass(0).await;
-        let (group, more) = self.queue.take_group();
-        if more {
-            self.start_turn();
-        }
-        if group.is_empty() {
-            return;
-        }
-        let batches: Vec<(&[NewReading], i64)> = group
-            .iter()
-            .map(|waiting| (waiting.readings.as_slice(), waiting.now_ms))
-            .collect();
-        let answers = self.store_batches(&batches).await;
-        for (waiting, answer) in group.into_iter().zip(answers) {
-            // A requester that has gone away needs no answer; its batch is stored all the same.
-            let _ = waiting.answer.send(answer);
-        }
-    }
-
-    /// Stores `batches` in one transaction, one answer per batch. A statement error that no retry
-    /// cures and that is not the database's state (read-only, full, gone) may be one batch's own
-    /// doing: the batches are then stored one by one, so that it fails only its own batch.
-    async fn store_batches(&self, batches: &[(&[NewReading], i64)]) -> Vec<BatchAnswer> {
-        match with_retries(|| self.try_store_batches(batches)).await {
-            Ok(answers) => answers,
-            Err(StoreError::Other(_)) if batches.len() > 1 => {
-                let mut answers = Vec::with_capacity(batches.len());
-                for batch in batches {
-                    let alone = std::slice::from_ref(batch);
-                    answers.push(match with_retries(|| self.try_store_batches(alone)).await {
-                        Ok(mut answer) => answer.remove(0),
-                        Err(error) => Err(error),
-                    });
-                }
-                answers
-            }
-            Err(error) => vec![Err(error); batches.len()],
-        }
-    }
-
-    /// One attempt at storing `batches` (each with the time it arrived) as if one after the other:
-    /// a batch naming an unknown station is refused whole and writes nothing, the others are
-    /// classified in order against what is stored and what the batches before them stored.
-    async fn try_store_batches(
-        &self,
-        batches: &[(&[NewReading], i64)],
-    ) -> Result<Vec<BatchAnswer>, AttemptError> {
-        let mut tx = self.begin_immediate().await?;
-
-        let all_readings = || batches.iter().flat_map(|(readings, _)| readings.iter());
-        let station_keys = distinct_sorted(all_readings().map(|reading| &reading.station));
-        let stations = lookup_stations(&mut tx, &station_keys).await?;
-        let mut answers: Vec<BatchAnswer> = Vec::with_capacity(batches.len());
-        for (readings, _) in batches {
-            let unknown = missing_keys(readings.iter().map(|reading| &reading.station), &stations);
-            answers.push(if unknown.is_empty() {
-                Ok(BatchOutcome::default())
-            } else {
-                Err(StoreError::NotFound(format!(
-                    "unknown stations: {}",
-                    unknown.join(", ")
-                )))
-            });
-        }
-        let stored = || {
-            batches
-                .iter()
-                .zip(&answers)
-                .filter(|(_, answer)| answer.is_ok())
-                .map(|(batch, _)| batch)
-        };
-        let quantity_keys = distinct_sorted(
-            stored()
-                .flat_map(|(readings, _)| readings.iter())
-                .map(|reading| &reading.quantity),
-        );
-        let quantities = ensure_quantities(&mut tx, &quantity_keys).await?;
-
-        let resolved: Vec<(Vec<ResolvedReading<'_>>, i64)> = stored()
-            .map(|(readings, now_ms)| (resolve(readings, &stations, &quantities), *now_ms))
-            .collect();
-        let mut keys: Vec<KeyIds> = resolved
-            .iter()
-            .flat_map(|(batch, _)| batch.iter().map(ResolvedReading::key))
-            .collect();
-        keys.sort_unstable();
-        keys.dedup();
-        let mut current = current_values(&mut tx, &keys).await?;
-
-        let mut rows = Vec::new();
-        let mut buckets = BTreeSet::new();
-        let mut following = Following::new();
-        let mut marked_at_ms = i64::MIN;
-        let stored_answers = answers.iter_mut().filter(|answer| answer.is_ok());
-        for ((batch, now_ms), answer) in resolved.iter().zip(stored_answers) {
-            let plan = plan_batch(batch, &mut current, self.history_ms);
-            *answer = Ok(plan.outcome);
-            rows.extend(plan.rows.into_iter().map(|row| (row, *now_ms)));
-            buckets.extend(plan.buckets);
-            following.extend(plan.following);
-            marked_at_ms = marked_at_ms.max(*now_ms);
-        }
-
-        for chunk in rows.chunks(SQLITE_MAX_PARAMETERS / 8) {
-            let mut insert = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO readings (observed_at_ms, station_id, quantity_id, revision, value, \
-                 value_as_sent, unit_as_sent, received_at_ms) ",
-            );
-            insert.push_values(chunk, |mut values, (row, received_at_ms)| {
-                values
-                    .push_bind(row.observed_at_ms)
-                    .push_bind(row.station_id)
-                    .push_bind(row.quantity_id)
-                    .push_bind(row.revision)
-                    .push_bind(row.value)
-                    .push_bind(row.value_as_sent)
-                    .push_bind(row.unit_as_sent.as_deref())
-                    .push_bind(*received_at_ms);
-            });
-            insert.build().execute(&mut *tx).await?;
-        }
-
-        let buckets: Vec<KeyIds> = buckets.into_iter().collect();
-        for chunk in buckets.chunks(SQLITE_MAX_PARAMETERS / 5) {
-            let mut upsert = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, marked_at_ms, \
-                 first_marked_at_ms) ",
-            );
-            upsert.push_values(
-                chunk,
-                |mut values, &(area_id, quantity_id, bucket_start_ms)| {
-                    values
-                        .push_bind(area_id)
-                        .push_bind(quantity_id)
-                        .push_bind(bucket_start_ms)
-                        .push_bind(marked_at_ms)
-                        .push_bind(marked_at_ms);
-                },
-            );
-            upsert.push(
-                " ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
-                 marked_at_ms = excluded.marked_at_ms, \
-                 mark_count = pending_buckets.mark_count + 1",
-            );
-            upsert.build().execute(&mut *tx).await?;
-        }
-
-        coalesce_following(&mut following);
-        for chunk in following.chunks(SQLITE_MAX_PARAMETERS / 5) {
-            let mut mark = QueryBuilder::<Sqlite>::new(
-                "WITH following (area_id, quantity_id, after_ms, until_ms, marked_at_ms) AS (",
-            );
-            mark.push_values(
-                chunk,
-                |mut values, &(area_id, quantity_id, after_ms, until_ms)| {
-                    values
-                        .push_bind(area_id)
-                        .push_bind(quantity_id)
-                        .push_bind(after_ms)
-                        .push_bind(until_ms)
-                        .push_bind(marked_at_ms);
-                },
-            );
-            mark.push(") ").push(MARK_FOLLOWING);
-            mark.build().execute(&mut *tx).await?;
-        }
-
-        tx.commit().await?;
-        Ok(answers)
-    }
 }
 
 async fn lookup_stations(
@@ -407,76 +211,6 @@ async fn lookup_stations(
         }
     }
     Ok(found)
-}
-
-/// Returns the ids of the given quantity keys, adding the keys that have none yet.
-async fn ensure_quantities(
-    tx: &mut Transaction<'static, Sqlite>,
-    keys: &[String],
-) -> Result<HashMap<String, i64>, sqlx::Error> {
-    let mut found = lookup_quantities(tx, keys).await?;
-    let missing = missing_keys(keys, &found);
-    if !missing.is_empty() {
-        for chunk in missing.chunks(SQLITE_MAX_PARAMETERS) {
-            let mut insert = QueryBuilder::<Sqlite>::new("INSERT INTO quantities (key) ");
-            insert.push_values(chunk, |mut values, key| {
-                values.push_bind(key.as_str());
-            });
-            insert.push(" ON CONFLICT (key) DO NOTHING");
-            insert.build().execute(&mut **tx).await?;
-        }
-        found.extend(lookup_quantities(tx, &missing).await?);
-    }
-    Ok(found)
-}
-
-async fn lookup_quantities(
-    tx: &mut Transaction<'static, Sqlite>,
-    keys: &[String],
-) -> Result<HashMap<String, i64>, sqlx::Error> {
-    let mut found = HashMap::with_capacity(keys.len());
-    for chunk in keys.chunks(SQLITE_MAX_PARAMETERS) {
-        let mut query =
-            QueryBuilder::<Sqlite>::new("SELECT key, id FROM quantities WHERE key IN (");
-        let mut separated = query.separated(", ");
-        for key in chunk {
-            separated.push_bind(key.as_str());
-        }
-        query.push(")");
-        for row in query.build().fetch_all(&mut **tx).await? {
-            found.insert(row.try_get::<String, _>(0)?, row.try_get::<i64, _>(1)?);
-        }
-    }
-    Ok(found)
-}
-
-/// Loads the current revision of every key of the batch with one set-based query per chunk: the
-/// keys travel as a VALUES list joined to the readings' unique index.
-async fn current_values(
-    tx: &mut Transaction<'static, Sqlite>,
-    keys: &[KeyIds],
-) -> Result<HashMap<KeyIds, CurrentValue>, sqlx::Error> {
-    let mut current = HashMap::new();
-    for chunk in keys.chunks(SQLITE_MAX_PARAMETERS / 3) {
-        let mut query = QueryBuilder::<Sqlite>::new(
-            "WITH batch_keys (observed_at_ms, station_id, quantity_id) AS (",
-        );
-        query.push_values(
-            chunk,
-            |mut values, &(observed_at_ms, station_id, quantity_id)| {
-                values
-                    .push_bind(observed_at_ms)
-                    .push_bind(station_id)
-                    .push_bind(quantity_id);
-            },
-        );
-        query.push(") ");
-        query.push(CURRENT_VALUES_SELECT);
-        for row in query.build().fetch_all(&mut **tx).await? {
-            insert_current(&mut current, &row)?;
-        }
-    }
-    Ok(current)
 }
 
 impl Store for SqliteStore {
@@ -539,12 +273,7 @@ impl Store for SqliteStore {
         if readings.is_empty() {
             return Ok(BatchOutcome::default());
         }
-        if readings.len() <= LARGE_WRITE_ROWS {
-            return self.insert_grouped(readings, now_ms).await;
-        }
-        let _pass = self.write_pass(readings.len()).await;
-        let mut answers = self.store_batches(&[(readings, now_ms)]).await;
-        answers.remove(0)
+        self.writer.store(readings.to_vec(), now_ms).await
     }
 
     async fn count_readings(&self) -> Result<u64, StoreError> {
@@ -603,8 +332,7 @@ impl Store for SqliteStore {
             .await?)
     }
 
-    /// Through the direct reader (`sqlite_read.rs`) for a database file, through the pool for an
-    /// in-memory database.
+    /// Through the direct reader (`sqlite_read.rs`).
     async fn load_interval(
         &self,
         area_id: i64,
@@ -612,29 +340,27 @@ impl Store for SqliteStore {
         from_ms: i64,
         to_ms: i64,
     ) -> Result<crate::IntervalData, StoreError> {
-        match &self.direct {
-            Some(reader) => {
-                reader
-                    .load_interval(area_id, quantity, from_ms, to_ms)
-                    .await
-            }
-            None => load_interval_through_pool(&self.pool, area_id, quantity, from_ms, to_ms).await,
-        }
+        self.direct
+            .load_interval(area_id, quantity, from_ms, to_ms)
+            .await
     }
 
     crate::results_sql::result_store_methods!();
 
     async fn close(&self) {
+        self.writer.close().await;
         self.pool.close().await;
     }
 }
 
-/// `Store::load_interval` through the sqlx pool: for an in-memory database, which the direct
-/// reader cannot open a second time. The area's stations drive the loop (`CROSS JOIN` keeps that order on SQLite) and each
+/// `Store::load_interval` through the sqlx pool, the reference the direct read is tested against
+/// (`direct_read_equals_the_pool_read`). The area's stations drive the loop (`CROSS JOIN` keeps
+/// that order on SQLite) and each
 /// station's readings are one range of the station-first index (migration 0003), read
 /// in (time, revision) order; of several revisions of one reading the last one read is
 /// kept, so "current" costs no probe per row. Reviews are few: one more query finds the
 /// overturned ones among the range's readings.
+#[cfg(test)]
 async fn load_interval_through_pool(
     pool: &SqlitePool,
     area_id: i64,
@@ -703,6 +429,21 @@ mod tests {
         (database, store)
     }
 
+    /// A database only in memory is refused with the reason: the writer thread and the worker's
+    /// reader open the database a second time, which would give each an empty database of its own.
+    #[tokio::test]
+    async fn an_in_memory_database_is_refused() {
+        for url in ["sqlite::memory:", "sqlite://consensor.db?mode=memory"] {
+            let error = SqliteStore::connect(url, &StoreOptions::default())
+                .await
+                .expect_err(url);
+            assert!(
+                matches!(&error, StoreError::Other(m) if m.contains("in-memory")),
+                "{url}: {error}"
+            );
+        }
+    }
+
     /// Small batches that arrive while the write lock is held elsewhere are stored as one group
     /// once it is free, and answered each on its own: the good ones with their outcome, one naming
     /// an unknown station and one that the database refuses (a trigger) with their own errors, the
@@ -741,7 +482,7 @@ mod tests {
                 tokio::spawn(async move { store.insert_batch(&batch, BASE).await })
             })
             .collect();
-        while store.queue.waiting() < count {
+        while store.writer.queue().waiting() < count {
             tokio::time::sleep(std::time::Duration::from_millis(5)).await;
         }
         drop(held);
@@ -749,7 +490,7 @@ mod tests {
         for task in tasks {
             answers.push(task.await.expect("task"));
         }
-        assert_eq!(store.queue.groups_taken(), 1, "one group for all");
+        assert_eq!(store.writer.queue().turns_taken(), 1, "one group for all");
         for answer in &answers[..30] {
             assert_eq!(answer.as_ref().expect("stored").accepted, 1);
         }
@@ -768,10 +509,6 @@ mod tests {
     async fn direct_read_equals_the_pool_read() {
         let (database, store) =
             store_with(&[("north", "ST-2"), ("north", "ST-1"), ("south", "ST-9")]).await;
-        assert!(
-            store.direct.is_some(),
-            "a database file gets the direct reader"
-        );
         const BASE: i64 = 1_780_000_200_000;
         let reading = |station: &str, minute: i64, value: Option<f64>| NewReading {
             station: station.to_owned(),
@@ -827,7 +564,7 @@ mod tests {
             .expect("review");
         }
         let area_id = store.list_areas().await.expect("areas")[0].id;
-        let reader = store.direct.clone().expect("direct reader");
+        let reader = store.direct.clone();
         for (from, to) in [(BASE, BASE + 600_000), (BASE - 600_000, BASE + 3_600_000)] {
             let direct = reader
                 .load_interval(area_id, "air_temperature", from, to)

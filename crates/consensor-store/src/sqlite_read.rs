@@ -5,9 +5,8 @@
 //! worker's index at about 0.2 µs (BENCHMARKS.md, "Worker"). The worker reads hundreds of thousands of
 //! rows per run of intervals, so this one read goes through rusqlite instead, on the blocking pool,
 //! with the same SQL text and the same assembly of rows as the sqlx read (`results.rs`), and it
-//! reads its three queries in one transaction, so they see one snapshot. Writes never go this
-//! way. When the database is not a file that can be opened a second time (an in-memory database),
-//! or the file cannot be opened read-only, the sqlx read is used.
+//! reads its three queries in one transaction, so they see one snapshot. (Batches of readings are
+//! written through a connection of their own too: `sqlite_write.rs`.)
 
 use std::path::PathBuf;
 use std::sync::{Arc, Mutex};
@@ -33,17 +32,13 @@ pub(crate) struct DirectReader {
 }
 
 impl DirectReader {
-    /// A reader for the database file at `path`, or `None` for an in-memory database.
-    pub(crate) fn for_file(path: &std::path::Path, busy_timeout: Duration) -> Option<Arc<Self>> {
-        let text = path.to_string_lossy();
-        if text.is_empty() || text == ":memory:" || text.starts_with("file::memory:") {
-            return None;
-        }
-        Some(Arc::new(DirectReader {
+    /// A reader for the database file at `path`.
+    pub(crate) fn for_file(path: &std::path::Path, busy_timeout: Duration) -> Arc<Self> {
+        Arc::new(DirectReader {
             path: path.to_owned(),
             busy_timeout,
             idle: Mutex::new(Vec::new()),
-        }))
+        })
     }
 
     /// See `Store::load_interval`.

@@ -8,6 +8,10 @@
 //! arrival order, so a small write waits at most for the one large write in hand and the small ones
 //! ahead of it. Both queues are tokio mutexes, which are fair (first come, first served).
 //! Other processes (an import, a backup) still meet the busy handler, as before.
+//!
+//! Batches of readings reach the gate through the SQLite writer thread (`sqlite_write.rs`), which
+//! takes a pass for each of its turns and orders large and small batches itself
+//! (`commit_group.rs`); the consensus results, reviews and claims take theirs from async tasks.
 
 use std::sync::Arc;
 
@@ -43,6 +47,17 @@ impl WriteGate {
         GatePass {
             _writer: Arc::clone(&self.writer).lock_owned().await,
             _large: large,
+        }
+    }
+}
+
+impl WriteGate {
+    /// [`WriteGate::enter`] for a small write, from a thread outside the async runtime (the SQLite
+    /// writer thread): it waits in the same first-come queue.
+    pub(crate) fn enter_blocking(&self) -> GatePass {
+        GatePass {
+            _writer: Arc::clone(&self.writer).blocking_lock_owned(),
+            _large: None,
         }
     }
 }

@@ -1,0 +1,457 @@
+//! The batch write on SQLite, through a connection of its own on a blocking thread.
+//!
+//! SQLite lets one transaction write at a time, so the time a batch holds the write lock bounds the
+//! whole service's ingest rate. Through sqlx every statement of a batch's transaction is a round
+//! trip between the connection's thread and an async task, and under a burst that task waits for a
+//! runtime thread that is busy decoding other requests: the load test measured a 5,000-reading
+//! batch holding the lock for about 50 ms, of which SQLite worked for less than half (BENCHMARKS.md,
+//! "Load"). Here one thread of its own stores every batch: it takes the batches waiting in the
+//! commit queue (`commit_group.rs`) as soon as it is free, runs their whole transaction in one
+//! call (every statement prepared once and kept, one reading one step of a prepared statement),
+//! and gives the write lock back as soon as the commit returns.
+//!
+//! The classification is the backend-neutral one (`batch.rs`), so the outcome of a batch is the
+//! same as on PostgreSQL; the statements are the point-wise forms of the multi-row ones the
+//! PostgreSQL store sends (`postgres.rs`).
+
+use std::collections::{BTreeSet, HashMap};
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+use rusqlite::{Connection, OpenFlags, OptionalExtension, TransactionBehavior};
+
+use crate::batch::{
+    coalesce_following, distinct_sorted, missing_keys, plan_batch, resolve, CurrentValue,
+    Following, KeyIds, ResolvedReading, MARK_FOLLOWING,
+};
+use crate::commit_group::{BatchAnswer, CommitQueue, WaitingBatch};
+use crate::write_gate::{WriteGate, LARGE_WRITE_ROWS};
+use crate::{BatchOutcome, NewReading, StationRef, StoreError};
+
+/// The writer thread of one SQLite file: it owns the one writing connection of this process
+/// (opened on first use, and again after a failure that left it inside a transaction) and stores
+/// the batches of the commit queue, a turn at a time. Dropping the last handle (or `close`) lets the
+/// thread store what is queued and end.
+#[derive(Debug)]
+pub(crate) struct DirectWriter {
+    queue: Arc<CommitQueue>,
+    thread: Mutex<Option<std::thread::JoinHandle<()>>>,
+}
+
+/// What the writer thread needs to open its connection.
+#[derive(Debug)]
+struct WriterSettings {
+    path: PathBuf,
+    read_only: bool,
+    busy_timeout: Duration,
+    history_ms: i64,
+}
+
+impl DirectWriter {
+    /// Starts the writer of the database file at `path`; `read_only` when the database URL asked
+    /// for SQLite's `mode=ro`, so that writes fail as they do through the pool.
+    pub(crate) fn start(
+        path: &Path,
+        read_only: bool,
+        busy_timeout: Duration,
+        history_ms: i64,
+        gate: Arc<WriteGate>,
+    ) -> Result<Self, StoreError> {
+        let queue = Arc::new(CommitQueue::default());
+        let settings = WriterSettings {
+            path: path.to_owned(),
+            read_only,
+            busy_timeout,
+            history_ms,
+        };
+        let thread_queue = Arc::clone(&queue);
+        let thread = std::thread::Builder::new()
+            .name("consensor-sqlite-writer".to_owned())
+            .spawn(move || write_turns(&settings, &thread_queue, &gate))
+            .map_err(|error| {
+                StoreError::Other(format!("could not start the SQLite writer thread: {error}"))
+            })?;
+        Ok(DirectWriter {
+            queue,
+            thread: Mutex::new(Some(thread)),
+        })
+    }
+
+    /// Queues `readings` (which arrived at `now_ms`) and waits for the writer's answer.
+    pub(crate) async fn store(&self, readings: Vec<NewReading>, now_ms: i64) -> BatchAnswer {
+        let (answer, answered) = tokio::sync::oneshot::channel();
+        let batch = WaitingBatch {
+            readings,
+            now_ms,
+            answer,
+        };
+        if self.queue.push(batch).is_err() {
+            return Err(StoreError::Unavailable("the store is closing".to_owned()));
+        }
+        answered.await.unwrap_or_else(|_| {
+            Err(StoreError::Other(
+                "the SQLite writer ended without an answer".to_owned(),
+            ))
+        })
+    }
+
+    /// Lets the writer store what is queued, then waits for it to end (its connection closed).
+    pub(crate) async fn close(&self) {
+        self.queue.close();
+        let thread = self
+            .thread
+            .lock()
+            .unwrap_or_else(|poison| poison.into_inner())
+            .take();
+        if let Some(thread) = thread {
+            let _ = tokio::task::spawn_blocking(move || thread.join()).await;
+        }
+    }
+
+    /// The queue, for tests that watch batches wait.
+    #[cfg(test)]
+    pub(crate) fn queue(&self) -> &CommitQueue {
+        &self.queue
+    }
+}
+
+impl Drop for DirectWriter {
+    fn drop(&mut self) {
+        self.queue.close();
+    }
+}
+
+/// The writer thread's loop: waits for batches, takes its turn at the write lock (behind this
+/// process's other writers, `write_gate.rs`), takes the batches waiting then and stores them.
+fn write_turns(settings: &WriterSettings, queue: &CommitQueue, gate: &WriteGate) {
+    let mut connection: Option<Connection> = None;
+    let mut after_large = false;
+    while queue.wait_for_batches() {
+        let pass = gate.enter_blocking();
+        let turn = queue.take_turn(after_large);
+        if turn.is_empty() {
+            continue;
+        }
+        after_large = turn[0].readings.len() > LARGE_WRITE_ROWS;
+        let mut senders = Vec::with_capacity(turn.len());
+        let batches: Vec<(Vec<NewReading>, i64)> = turn
+            .into_iter()
+            .map(|waiting| {
+                senders.push(waiting.answer);
+                (waiting.readings, waiting.now_ms)
+            })
+            .collect();
+        let answers = match attempt(settings, &mut connection, &batches) {
+            Ok(answers) => answers,
+            // A statement error that is not the database's state (read-only, full, gone) may be
+            // one batch's own doing: the batches are then stored one by one, so that it fails
+            // only its own batch.
+            Err(StoreError::Other(_)) if batches.len() > 1 => batches
+                .iter()
+                .map(|batch| {
+                    attempt(settings, &mut connection, std::slice::from_ref(batch))
+                        .and_then(|mut answer| answer.remove(0))
+                })
+                .collect(),
+            Err(error) => vec![Err(error); batches.len()],
+        };
+        drop(pass);
+        for (sender, answer) in senders.into_iter().zip(answers) {
+            // A requester that has gone away needs no answer; its batch is stored all the same.
+            let _ = sender.send(answer);
+        }
+    }
+}
+
+/// One transaction for `batches`, on the kept connection.
+fn attempt(
+    settings: &WriterSettings,
+    slot: &mut Option<Connection>,
+    batches: &[(Vec<NewReading>, i64)],
+) -> Result<Vec<BatchAnswer>, StoreError> {
+    let connection = match slot {
+        Some(connection) => connection,
+        None => slot.insert(settings.open()?),
+    };
+    let result = store_batches(connection, batches, settings.history_ms);
+    // SQLite rolls a transaction back by itself on some errors (a full disk, an I/O error); a
+    // connection left inside one by a failure is closed, and the next write opens a fresh one.
+    if result.is_err() && !connection.is_autocommit() {
+        *slot = None;
+    }
+    result
+}
+
+impl WriterSettings {
+    fn open(&self) -> Result<Connection, StoreError> {
+        let access = if self.read_only {
+            OpenFlags::SQLITE_OPEN_READ_ONLY
+        } else {
+            OpenFlags::SQLITE_OPEN_READ_WRITE
+        };
+        let connection =
+            Connection::open_with_flags(&self.path, access | OpenFlags::SQLITE_OPEN_NO_MUTEX)?;
+        connection.busy_timeout(self.busy_timeout)?;
+        // The same settings as the pool's connections (`sqlite.rs`): a commit is on disk when it
+        // returns, and the references between tables are enforced. WAL mode is a property of the
+        // file, set when the pool created it.
+        connection.pragma_update(None, "synchronous", "FULL")?;
+        connection.pragma_update(None, "foreign_keys", "ON")?;
+        // A page cache of 64 MiB (negative: KiB) instead of SQLite's 2 MiB for this one
+        // connection: each batch inserts into three B-trees at places spread over the file, and
+        // pages that fall out of the cache are read again from the operating system's. Alternating
+        // load runs stored the burst 20-40 % faster with it (BENCHMARKS.md, "Load"); 256 MiB was
+        // no faster there.
+        connection.pragma_update(None, "cache_size", WRITER_CACHE_KIB)?;
+        connection.set_prepared_statement_cache_capacity(32);
+        Ok(connection)
+    }
+}
+
+/// The writer connection's page cache, as SQLite's `cache_size` takes it (negative: KiB).
+const WRITER_CACHE_KIB: i64 = -64 * 1024;
+
+/// The value of the `mode` parameter of an SQLite database URL (`sqlite://path?mode=ro`).
+fn url_mode(url: &str) -> Option<&str> {
+    let (_, query) = url.split_once('?')?;
+    query
+        .split('&')
+        .find_map(|parameter| parameter.strip_prefix("mode="))
+}
+
+/// Whether an SQLite database URL asks for a read-only database (`mode=ro`).
+pub(crate) fn url_is_read_only(url: &str) -> bool {
+    url_mode(url).is_some_and(|mode| mode.eq_ignore_ascii_case("ro"))
+}
+
+/// The database file that `path` (the file name of an SQLite database URL) names, or `None` for an
+/// in-memory database, which a second connection cannot open.
+pub(crate) fn database_file(url: &str, path: &Path) -> Option<PathBuf> {
+    let text = path.to_string_lossy();
+    // sqlx names the shared in-memory database it makes of `sqlite::memory:` with a URI of its
+    // own (`file:sqlx-in-memory-N`), which names no file.
+    let in_memory = text.is_empty()
+        || text == ":memory:"
+        || text.starts_with("file:")
+        || url_mode(url).is_some_and(|mode| mode.eq_ignore_ascii_case("memory"));
+    (!in_memory).then(|| path.to_owned())
+}
+
+const STATION_SQL: &str = "SELECT s.id, s.area_id, a.interval_ms FROM stations s \
+     JOIN areas a ON a.id = s.area_id WHERE s.key = ?1";
+const QUANTITY_SQL: &str = "SELECT id FROM quantities WHERE key = ?1";
+const ADD_QUANTITY_SQL: &str =
+    "INSERT INTO quantities (key) VALUES (?1) ON CONFLICT (key) DO NOTHING";
+/// The highest revision of one key: a backward probe of the readings' unique index.
+const CURRENT_SQL: &str = "SELECT revision, value, value_as_sent, unit_as_sent FROM readings \
+     WHERE observed_at_ms = ?1 AND station_id = ?2 AND quantity_id = ?3 \
+     ORDER BY revision DESC LIMIT 1";
+const INSERT_SQL: &str =
+    "INSERT INTO readings (observed_at_ms, station_id, quantity_id, revision, \
+     value, value_as_sent, unit_as_sent, received_at_ms) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)";
+const MARK_SQL: &str = "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, \
+     marked_at_ms, first_marked_at_ms) VALUES (?1, ?2, ?3, ?4, ?4) \
+     ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
+     marked_at_ms = excluded.marked_at_ms, mark_count = pending_buckets.mark_count + 1";
+
+/// Stores `batches` as if one after the other, in one transaction: a batch naming an unknown
+/// station is refused whole and writes nothing, the others are classified in order against what is
+/// stored and what the batches before them stored.
+fn store_batches(
+    connection: &mut Connection,
+    batches: &[(Vec<NewReading>, i64)],
+    history_ms: i64,
+) -> Result<Vec<BatchAnswer>, StoreError> {
+    let tx = connection.transaction_with_behavior(TransactionBehavior::Immediate)?;
+
+    let all_readings = || batches.iter().flat_map(|(readings, _)| readings.iter());
+    let station_keys = distinct_sorted(all_readings().map(|reading| &reading.station));
+    let stations = lookup_stations(&tx, &station_keys)?;
+    let mut answers: Vec<BatchAnswer> = batches
+        .iter()
+        .map(|(readings, _)| {
+            let unknown = missing_keys(readings.iter().map(|reading| &reading.station), &stations);
+            if unknown.is_empty() {
+                Ok(BatchOutcome::default())
+            } else {
+                Err(StoreError::NotFound(format!(
+                    "unknown stations: {}",
+                    unknown.join(", ")
+                )))
+            }
+        })
+        .collect();
+    let stored = || {
+        batches
+            .iter()
+            .zip(&answers)
+            .filter(|(_, answer)| answer.is_ok())
+            .map(|(batch, _)| batch)
+    };
+    let quantity_keys = distinct_sorted(
+        stored()
+            .flat_map(|(readings, _)| readings.iter())
+            .map(|reading| &reading.quantity),
+    );
+    let quantities = ensure_quantities(&tx, &quantity_keys)?;
+
+    let resolved: Vec<(Vec<ResolvedReading<'_>>, i64)> = stored()
+        .map(|(readings, now_ms)| (resolve(readings, &stations, &quantities), *now_ms))
+        .collect();
+    let mut current = current_values(&tx, &resolved)?;
+
+    let mut buckets = BTreeSet::new();
+    let mut following = Following::new();
+    let mut marked_at_ms = i64::MIN;
+    {
+        let mut insert = tx.prepare_cached(INSERT_SQL)?;
+        let stored_answers = answers.iter_mut().filter(|answer| answer.is_ok());
+        for ((batch, now_ms), answer) in resolved.iter().zip(stored_answers) {
+            let plan = plan_batch(batch, &mut current, history_ms);
+            *answer = Ok(plan.outcome);
+            for row in &plan.rows {
+                insert.execute(rusqlite::params![
+                    row.observed_at_ms,
+                    row.station_id,
+                    row.quantity_id,
+                    row.revision,
+                    row.value,
+                    row.value_as_sent,
+                    row.unit_as_sent,
+                    now_ms,
+                ])?;
+            }
+            buckets.extend(plan.buckets);
+            following.extend(plan.following);
+            marked_at_ms = marked_at_ms.max(*now_ms);
+        }
+    }
+
+    {
+        let mut mark = tx.prepare_cached(MARK_SQL)?;
+        for (area_id, quantity_id, bucket_start_ms) in buckets {
+            mark.execute([area_id, quantity_id, bucket_start_ms, marked_at_ms])?;
+        }
+    }
+    coalesce_following(&mut following);
+    if !following.is_empty() {
+        let sql = format!(
+            "WITH following (area_id, quantity_id, after_ms, until_ms, marked_at_ms) AS \
+             (VALUES (?1, ?2, ?3, ?4, ?5)) {MARK_FOLLOWING}"
+        );
+        let mut mark = tx.prepare_cached(&sql)?;
+        for (area_id, quantity_id, after_ms, until_ms) in following {
+            mark.execute([area_id, quantity_id, after_ms, until_ms, marked_at_ms])?;
+        }
+    }
+
+    tx.commit()?;
+    Ok(answers)
+}
+
+fn lookup_stations(
+    tx: &rusqlite::Transaction<'_>,
+    keys: &[String],
+) -> Result<HashMap<String, StationRef>, StoreError> {
+    let mut statement = tx.prepare_cached(STATION_SQL)?;
+    let mut found = HashMap::with_capacity(keys.len());
+    for key in keys {
+        let station = statement
+            .query_row([key], |row| {
+                Ok(StationRef {
+                    station_id: row.get(0)?,
+                    area_id: row.get(1)?,
+                    interval_ms: row.get(2)?,
+                })
+            })
+            .optional()?;
+        if let Some(station) = station {
+            found.insert(key.clone(), station);
+        }
+    }
+    Ok(found)
+}
+
+/// Returns the ids of the given quantity keys, adding the keys that have none yet.
+fn ensure_quantities(
+    tx: &rusqlite::Transaction<'_>,
+    keys: &[String],
+) -> Result<HashMap<String, i64>, StoreError> {
+    let mut select = tx.prepare_cached(QUANTITY_SQL)?;
+    let mut lookup = |keys: &[String], found: &mut HashMap<String, i64>| -> rusqlite::Result<()> {
+        for key in keys {
+            if let Some(id) = select.query_row([key], |row| row.get(0)).optional()? {
+                found.insert(key.clone(), id);
+            }
+        }
+        Ok(())
+    };
+    let mut found = HashMap::with_capacity(keys.len());
+    lookup(keys, &mut found)?;
+    let missing = missing_keys(keys, &found);
+    if !missing.is_empty() {
+        let mut add = tx.prepare_cached(ADD_QUANTITY_SQL)?;
+        for key in &missing {
+            add.execute([key])?;
+        }
+        lookup(&missing, &mut found)?;
+    }
+    Ok(found)
+}
+
+/// The current revision of every distinct key of the batches, one index probe per key.
+fn current_values(
+    tx: &rusqlite::Transaction<'_>,
+    resolved: &[(Vec<ResolvedReading<'_>>, i64)],
+) -> Result<HashMap<KeyIds, CurrentValue>, StoreError> {
+    let mut keys: Vec<KeyIds> = resolved
+        .iter()
+        .flat_map(|(batch, _)| batch.iter().map(ResolvedReading::key))
+        .collect();
+    keys.sort_unstable();
+    keys.dedup();
+    let mut statement = tx.prepare_cached(CURRENT_SQL)?;
+    let mut current = HashMap::new();
+    for key in keys {
+        let found = statement
+            .query_row([key.0, key.1, key.2], |row| {
+                Ok(CurrentValue {
+                    revision: row.get(0)?,
+                    value: row.get(1)?,
+                    value_as_sent: row.get(2)?,
+                    unit_as_sent: row.get(3)?,
+                })
+            })
+            .optional()?;
+        if let Some(value) = found {
+            current.insert(key, value);
+        }
+    }
+    Ok(current)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn reads_the_mode_of_a_database_url() {
+        // SQLite's URI parameters (sqlite.org, "Uniform Resource Identifiers"): mode=ro opens the
+        // database read-only, mode=memory in memory.
+        assert!(url_is_read_only("sqlite:///var/lib/consensor/c.db?mode=ro"));
+        assert!(url_is_read_only("sqlite://c.db?cache=shared&mode=ro"));
+        assert!(!url_is_read_only("sqlite://c.db?mode=rwc"));
+        assert!(!url_is_read_only("sqlite://mode=ro.db"));
+        let file = Path::new("/var/lib/consensor/c.db");
+        assert_eq!(
+            database_file("sqlite:///var/lib/consensor/c.db", file),
+            Some(file.to_owned())
+        );
+        assert_eq!(database_file("sqlite://c.db?mode=memory", file), None);
+        assert_eq!(
+            database_file("sqlite::memory:", Path::new(":memory:")),
+            None
+        );
+    }
+}
