@@ -142,25 +142,42 @@ fn write_turns(settings: &WriterSettings, queue: &CommitQueue, gate: &WriteGate)
                 (waiting.readings, waiting.now_ms)
             })
             .collect();
-        let answers = match attempt(settings, &mut connection, &batches) {
-            Ok(answers) => answers,
-            // A statement error that is not the database's state (read-only, full, gone) may be
-            // one batch's own doing: the batches are then stored one by one, so that it fails
-            // only its own batch.
-            Err(StoreError::Other(_)) if batches.len() > 1 => batches
-                .iter()
-                .map(|batch| {
-                    attempt(settings, &mut connection, std::slice::from_ref(batch))
-                        .and_then(|mut answer| answer.remove(0))
-                })
-                .collect(),
-            Err(error) => vec![Err(error); batches.len()],
-        };
+        // A panic in one turn (a bug) fails that turn's batches, whose transaction was rolled back
+        // when the connection was dropped; the thread goes on serving the queue.
+        let answers = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+            store_turn(settings, &mut connection, &batches)
+        }))
+        .unwrap_or_else(|_| {
+            connection = None;
+            let error = StoreError::Other("the SQLite writer failed on this batch".to_owned());
+            vec![Err(error); batches.len()]
+        });
         drop(pass);
         for (sender, answer) in senders.into_iter().zip(answers) {
             // A requester that has gone away needs no answer; its batch is stored all the same.
             let _ = sender.send(answer);
         }
+    }
+}
+
+/// Stores one turn's batches in one transaction, one answer per batch. A statement error that is
+/// not the database's state (read-only, full, gone) may be one batch's own doing: the batches are
+/// then stored one by one, so that it fails only its own batch.
+fn store_turn(
+    settings: &WriterSettings,
+    connection: &mut Option<Connection>,
+    batches: &[(Vec<NewReading>, i64)],
+) -> Vec<BatchAnswer> {
+    match attempt(settings, connection, batches) {
+        Ok(answers) => answers,
+        Err(StoreError::Other(_)) if batches.len() > 1 => batches
+            .iter()
+            .map(|batch| {
+                attempt(settings, connection, std::slice::from_ref(batch))
+                    .and_then(|mut answer| answer.remove(0))
+            })
+            .collect(),
+        Err(error) => vec![Err(error); batches.len()],
     }
 }
 
