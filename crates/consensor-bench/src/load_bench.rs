@@ -67,42 +67,41 @@ pub struct Options {
 impl Options {
     pub fn from_args(args: &[String]) -> anyhow::Result<Options> {
         let quick = args.iter().any(|a| a == "--quick");
-        let mut seconds = if quick { 15 } else { 60 };
-        if let Some(position) = args.iter().position(|a| a == "--seconds") {
-            let text = args
-                .get(position + 1)
-                .context("--seconds needs a number of seconds")?;
-            seconds = text
-                .parse()
-                .ok()
-                .filter(|&n: &u64| (5..=3600).contains(&n))
-                .with_context(|| {
-                    format!("--seconds: {text:?} is not a whole number from 5 to 3600")
-                })?;
-        }
-        let mut burst_batch = BURST_BATCH;
-        if let Some(position) = args.iter().position(|a| a == "--burst-batch") {
-            let text = args
-                .get(position + 1)
-                .context("--burst-batch needs a number of readings")?;
-            burst_batch = text
-                .parse()
-                .ok()
-                .filter(|n| BURST_BATCH_RANGE.contains(n))
-                .with_context(|| {
-                    format!(
-                        "--burst-batch: {text:?} is not a whole number from {} to {}",
-                        BURST_BATCH_RANGE.start(),
-                        BURST_BATCH_RANGE.end()
-                    )
-                })?;
-        }
+        let default_seconds = if quick { 15 } else { 60 };
         Ok(Options {
             quick,
-            seconds,
-            burst_batch,
+            seconds: number_flag(args, "--seconds", default_seconds, 5..=3600)?,
+            burst_batch: number_flag(args, "--burst-batch", BURST_BATCH, BURST_BATCH_RANGE)?,
         })
     }
+}
+
+/// The whole number after `flag` in `args`, which must lie in `range`; `default` without the flag.
+fn number_flag<T>(
+    args: &[String],
+    flag: &str,
+    default: T,
+    range: std::ops::RangeInclusive<T>,
+) -> anyhow::Result<T>
+where
+    T: std::str::FromStr + PartialOrd + std::fmt::Display,
+{
+    let Some(position) = args.iter().position(|a| a == flag) else {
+        return Ok(default);
+    };
+    let text = args
+        .get(position + 1)
+        .with_context(|| format!("{flag} needs a whole number"))?;
+    text.parse()
+        .ok()
+        .filter(|n| range.contains(n))
+        .with_context(|| {
+            format!(
+                "{flag}: {text:?} is not a whole number from {} to {}",
+                range.start(),
+                range.end()
+            )
+        })
 }
 
 pub async fn run(options: Options) -> anyhow::Result<()> {

@@ -5,7 +5,7 @@
 //! `cargo run --release -p consensor-bench -- ingest [--quick]` (PostgreSQL too when
 //! `CONSENSOR_TEST_POSTGRES_URL` is set)
 //! `cargo run --release -p consensor-bench -- worker [--quick] [--postgres]`
-//! `consensor-bench load [--quick] [--seconds N]` (the load test against the real server binary;
+//! `consensor-bench load [--quick] [--seconds N] [--burst-batch N]` (the load test against the real server binary;
 //! `tools/load/run.sh` builds release and runs it)
 
 mod core_bench;
@@ -57,7 +57,7 @@ fn main() -> anyhow::Result<()> {
             .block_on(load_bench::run(load_bench::Options::from_args(&args)?)),
         _ => {
             eprintln!(
-                "usage: consensor-bench core|ingest|worker|load [--quick] [--postgres] [--seconds N]"
+                "usage: consensor-bench core|ingest|worker|load [--quick] [--postgres] [--seconds N] [--burst-batch N]"
             );
             std::process::exit(2);
         }
