@@ -501,6 +501,49 @@ mod tests {
         database.finish().await;
     }
 
+    /// The writer's own commits never checkpoint (its automatic checkpoint is off); the checkpoint
+    /// thread does, so the WAL is reused from its start instead of growing with every batch. SQLite
+    /// restarts the WAL once a checkpoint has copied all of it and no reader needs it (sqlite.org,
+    /// "Write-Ahead Logging": "checkpoint starvation" is the case where it cannot).
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn the_checkpoint_thread_keeps_the_wal_from_growing() {
+        let (database, store) = store_with(&[("north", "ST-1")]).await;
+        const BASE: i64 = 1_780_000_200_000;
+        let wal = database
+            .directory()
+            .expect("a file database")
+            .join("consensor.db-wal");
+        // 40 batches of 2,000 readings, each a distinct second: about 80,000 rows in all.
+        let mut largest_wal = 0;
+        for batch in 0..40i64 {
+            let readings: Vec<NewReading> = (0..2_000i64)
+                .map(|i| NewReading {
+                    station: "ST-1".to_owned(),
+                    quantity: "air_temperature".to_owned(),
+                    observed_at_ms: BASE + (batch * 2_000 + i) * 1_000,
+                    value: Some(10.0 + (i % 7) as f64),
+                    value_as_sent: Some(10.0 + (i % 7) as f64),
+                    unit_as_sent: None,
+                })
+                .collect();
+            store.insert_batch(&readings, BASE).await.expect("stored");
+            // Give the checkpoint thread a moment between batches, as a live feed would.
+            tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+            largest_wal = largest_wal.max(std::fs::metadata(&wal).map_or(0, |m| m.len()));
+        }
+        let database_file = database.directory().unwrap().join("consensor.db");
+        let stored_bytes = std::fs::metadata(&database_file).expect("file").len();
+        // All 80,000 rows were written through the WAL; had nothing been checkpointed, it would
+        // hold all of them, and the database file would still be nearly empty.
+        assert_eq!(store.count_readings().await.expect("count"), 80_000);
+        assert!(
+            largest_wal < stored_bytes / 2,
+            "the WAL grew to {largest_wal} bytes against a database file of {stored_bytes}"
+        );
+        store.close().await;
+        database.finish().await;
+    }
+
     /// The direct read and the pool's read give the same `IntervalData`: current revisions only,
     /// stations in key order, a reading whose latest review is an overturn (and not one whose
     /// overturn was later upheld). Both reads are this crate's own; the expected facts are API.md's

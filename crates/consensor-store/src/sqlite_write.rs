@@ -16,7 +16,7 @@
 
 use std::collections::{BTreeSet, HashMap};
 use std::path::{Path, PathBuf};
-use std::sync::{Arc, Mutex};
+use std::sync::{Arc, Condvar, Mutex};
 use std::time::Duration;
 
 use rusqlite::{Connection, OpenFlags, OptionalExtension, TransactionBehavior};
@@ -125,6 +125,35 @@ impl Drop for DirectWriter {
 /// The writer thread's loop: waits for batches, takes its turn at the write lock (behind this
 /// process's other writers, `write_gate.rs`), takes the batches waiting then and stores them.
 fn write_turns(settings: &WriterSettings, queue: &CommitQueue, gate: &WriteGate) {
+    // The checkpoint thread lives as long as the writer's loop (a read-only database has no WAL
+    // to copy from).
+    let checkpoints = Checkpoints::default();
+    std::thread::scope(|scope| {
+        let checkpointing = !settings.read_only && {
+            let checkpoints = &checkpoints;
+            std::thread::Builder::new()
+                .name("consensor-sqlite-checkpoint".to_owned())
+                .spawn_scoped(scope, move || checkpoint_on_request(settings, checkpoints))
+                .is_ok()
+        };
+        // Without the thread (it could not be started), the writer's commits checkpoint as
+        // SQLite's default has them do.
+        let own = Open {
+            automatic_checkpoint: !checkpointing,
+        };
+        serve_queue(settings, own, queue, gate, &checkpoints);
+        checkpoints.close();
+    });
+}
+
+/// Serves the commit queue until the store closes, asking for a checkpoint after each turn.
+fn serve_queue(
+    settings: &WriterSettings,
+    open: Open,
+    queue: &CommitQueue,
+    gate: &WriteGate,
+    checkpoints: &Checkpoints,
+) {
     let mut connection: Option<Connection> = None;
     let mut after_large = false;
     while queue.wait_for_batches() {
@@ -145,7 +174,7 @@ fn write_turns(settings: &WriterSettings, queue: &CommitQueue, gate: &WriteGate)
         // A panic in one turn (a bug) fails that turn's batches, whose transaction was rolled back
         // when the connection was dropped; the thread goes on serving the queue.
         let answers = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-            store_turn(settings, &mut connection, &batches)
+            store_turn(settings, open, &mut connection, &batches)
         }))
         .unwrap_or_else(|_| {
             connection = None;
@@ -157,6 +186,85 @@ fn write_turns(settings: &WriterSettings, queue: &CommitQueue, gate: &WriteGate)
             // A requester that has gone away needs no answer; its batch is stored all the same.
             let _ = sender.send(answer);
         }
+        checkpoints.request();
+    }
+}
+
+/// How a connection of the writer's is opened.
+#[derive(Debug, Clone, Copy)]
+struct Open {
+    /// SQLite's automatic checkpoint at commit; off for the writer while the checkpoint thread runs.
+    automatic_checkpoint: bool,
+}
+
+/// What the checkpoint thread waits for.
+#[derive(Debug, Default)]
+struct Checkpoints {
+    state: Mutex<CheckpointState>,
+    changed: Condvar,
+}
+
+#[derive(Debug, Default)]
+struct CheckpointState {
+    /// The writer has committed since the last checkpoint began.
+    requested: bool,
+    /// The writer has ended.
+    closed: bool,
+}
+
+impl Checkpoints {
+    fn update(&self, change: impl FnOnce(&mut CheckpointState)) {
+        change(&mut self.state.lock().unwrap_or_else(|p| p.into_inner()));
+        self.changed.notify_one();
+    }
+
+    fn request(&self) {
+        self.update(|state| state.requested = true);
+    }
+
+    fn close(&self) {
+        self.update(|state| state.closed = true);
+    }
+
+    /// Waits for a request (true) or the writer's end (false).
+    fn wait(&self) -> bool {
+        let mut state = self.state.lock().unwrap_or_else(|p| p.into_inner());
+        loop {
+            if state.closed {
+                return false;
+            }
+            if std::mem::take(&mut state.requested) {
+                return true;
+            }
+            state = self.changed.wait(state).unwrap_or_else(|p| p.into_inner());
+        }
+    }
+}
+
+/// Copies the WAL's committed pages into the database file after the writer's commits, on a
+/// connection of its own, so that the writer's commits never do it: its connection's automatic
+/// checkpoint is off. SQLite's automatic checkpoint runs inside the commit that takes the WAL past
+/// 1,000 pages, and during a burst that was every few backlog batches, each time lengthening the
+/// turn that every waiting batch waits for (BENCHMARKS.md, "Load"). A passive checkpoint takes no
+/// write lock, so the writer goes on meanwhile; the pool's connections keep their automatic
+/// checkpoint, which finds little left to copy.
+fn checkpoint_on_request(settings: &WriterSettings, checkpoints: &Checkpoints) {
+    let mut connection: Option<Connection> = None;
+    while checkpoints.wait() {
+        let done = (|| -> Result<(), StoreError> {
+            let connection = match &connection {
+                Some(connection) => connection,
+                None => connection.insert(settings.open(Open {
+                    automatic_checkpoint: true,
+                })?),
+            };
+            connection.query_row("PRAGMA wal_checkpoint(PASSIVE)", [], |_| Ok(()))?;
+            Ok(())
+        })();
+        if done.is_err() {
+            connection = None;
+            std::thread::sleep(Duration::from_millis(500));
+        }
     }
 }
 
@@ -165,15 +273,16 @@ fn write_turns(settings: &WriterSettings, queue: &CommitQueue, gate: &WriteGate)
 /// then stored one by one, so that it fails only its own batch.
 fn store_turn(
     settings: &WriterSettings,
+    open: Open,
     connection: &mut Option<Connection>,
     batches: &[(Vec<NewReading>, i64)],
 ) -> Vec<BatchAnswer> {
-    match attempt(settings, connection, batches) {
+    match attempt(settings, open, connection, batches) {
         Ok(answers) => answers,
         Err(StoreError::Other(_)) if batches.len() > 1 => batches
             .iter()
             .map(|batch| {
-                attempt(settings, connection, std::slice::from_ref(batch))
+                attempt(settings, open, connection, std::slice::from_ref(batch))
                     .and_then(|mut answer| answer.remove(0))
             })
             .collect(),
@@ -184,12 +293,13 @@ fn store_turn(
 /// One transaction for `batches`, on the kept connection.
 fn attempt(
     settings: &WriterSettings,
+    open: Open,
     slot: &mut Option<Connection>,
     batches: &[(Vec<NewReading>, i64)],
 ) -> Result<Vec<BatchAnswer>, StoreError> {
     let connection = match slot {
         Some(connection) => connection,
-        None => slot.insert(settings.open()?),
+        None => slot.insert(settings.open(open)?),
     };
     let result = store_batches(connection, batches, settings.history_ms);
     // SQLite rolls a transaction back by itself on some errors (a full disk, an I/O error); a
@@ -201,7 +311,7 @@ fn attempt(
 }
 
 impl WriterSettings {
-    fn open(&self) -> Result<Connection, StoreError> {
+    fn open(&self, how: Open) -> Result<Connection, StoreError> {
         let access = if self.read_only {
             OpenFlags::SQLITE_OPEN_READ_ONLY
         } else {
@@ -221,6 +331,10 @@ impl WriterSettings {
         // load runs stored the burst 20-40 % faster with it (BENCHMARKS.md, "Load"); 256 MiB was
         // no faster there.
         connection.pragma_update(None, "cache_size", WRITER_CACHE_KIB)?;
+        if !how.automatic_checkpoint {
+            // Checkpoints are the checkpoint thread's (`checkpoint_on_request`).
+            connection.pragma_update(None, "wal_autocheckpoint", 0)?;
+        }
         connection.set_prepared_statement_cache_capacity(32);
         Ok(connection)
     }
