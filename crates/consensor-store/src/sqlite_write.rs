@@ -1,11 +1,12 @@
-//! The batch write on SQLite, through a connection of its own on a blocking thread.
+//! The batch write on SQLite, through a connection of its own on a thread of its own.
 //!
 //! SQLite lets one transaction write at a time, so the time a batch holds the write lock bounds the
 //! whole service's ingest rate. Through sqlx every statement of a batch's transaction is a round
 //! trip between the connection's thread and an async task, and under a burst that task waits for a
-//! runtime thread that is busy decoding other requests: the load test measured a 5,000-reading
-//! batch holding the lock for about 50 ms, of which SQLite worked for less than half (BENCHMARKS.md,
-//! "Load"). Here one thread of its own stores every batch: it takes the batches waiting in the
+//! runtime thread that is busy decoding other requests: in the load test's burst a 5,000-reading
+//! batch held the lock for 53 ms at the median (4.6 ms of it to look up nine stations and one
+//! quantity) while the machine stood 40 % idle (BENCHMARKS.md, "Load"). Here one thread of its own
+//! stores every batch: it takes the batches waiting in the
 //! commit queue (`commit_group.rs`) as soon as it is free, runs their whole transaction in one
 //! call (every statement prepared once and kept, one reading one step of a prepared statement),
 //! and gives the write lock back as soon as the commit returns.
@@ -40,12 +41,15 @@ pub(crate) struct DirectWriter {
 }
 
 /// What the writer thread needs to open its connection.
-#[derive(Debug)]
+#[derive(Debug, Clone)]
 struct WriterSettings {
     path: PathBuf,
     read_only: bool,
     busy_timeout: Duration,
     history_ms: i64,
+    /// SQLite's automatic checkpoint at commit; off for the writer while the checkpoint thread
+    /// runs.
+    automatic_checkpoint: bool,
 }
 
 impl DirectWriter {
@@ -64,6 +68,7 @@ impl DirectWriter {
             read_only,
             busy_timeout,
             history_ms,
+            automatic_checkpoint: true,
         };
         let thread_queue = Arc::clone(&queue);
         let thread = std::thread::Builder::new()
@@ -138,10 +143,11 @@ fn write_turns(settings: &WriterSettings, queue: &CommitQueue, gate: &WriteGate)
         };
         // Without the thread (it could not be started), the writer's commits checkpoint as
         // SQLite's default has them do.
-        let own = Open {
+        let writer = WriterSettings {
             automatic_checkpoint: !checkpointing,
+            ..settings.clone()
         };
-        serve_queue(settings, own, queue, gate, &checkpoints);
+        serve_queue(&writer, queue, gate, &checkpoints);
         checkpoints.close();
     });
 }
@@ -149,7 +155,6 @@ fn write_turns(settings: &WriterSettings, queue: &CommitQueue, gate: &WriteGate)
 /// Serves the commit queue until the store closes, asking for a checkpoint after each turn.
 fn serve_queue(
     settings: &WriterSettings,
-    open: Open,
     queue: &CommitQueue,
     gate: &WriteGate,
     checkpoints: &Checkpoints,
@@ -174,7 +179,7 @@ fn serve_queue(
         // A panic in one turn (a bug) fails that turn's batches, whose transaction was rolled back
         // when the connection was dropped; the thread goes on serving the queue.
         let answers = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-            store_turn(settings, open, &mut connection, &batches)
+            store_turn(settings, &mut connection, &batches)
         }))
         .unwrap_or_else(|_| {
             connection = None;
@@ -188,13 +193,6 @@ fn serve_queue(
         }
         checkpoints.request();
     }
-}
-
-/// How a connection of the writer's is opened.
-#[derive(Debug, Clone, Copy)]
-struct Open {
-    /// SQLite's automatic checkpoint at commit; off for the writer while the checkpoint thread runs.
-    automatic_checkpoint: bool,
 }
 
 /// What the checkpoint thread waits for.
@@ -254,9 +252,7 @@ fn checkpoint_on_request(settings: &WriterSettings, checkpoints: &Checkpoints) {
         let done = (|| -> Result<(), StoreError> {
             let connection = match &connection {
                 Some(connection) => connection,
-                None => connection.insert(settings.open(Open {
-                    automatic_checkpoint: true,
-                })?),
+                None => connection.insert(settings.open()?),
             };
             connection.query_row("PRAGMA wal_checkpoint(PASSIVE)", [], |_| Ok(()))?;
             Ok(())
@@ -273,16 +269,15 @@ fn checkpoint_on_request(settings: &WriterSettings, checkpoints: &Checkpoints) {
 /// then stored one by one, so that it fails only its own batch.
 fn store_turn(
     settings: &WriterSettings,
-    open: Open,
     connection: &mut Option<Connection>,
     batches: &[(Vec<NewReading>, i64)],
 ) -> Vec<BatchAnswer> {
-    match attempt(settings, open, connection, batches) {
+    match attempt(settings, connection, batches) {
         Ok(answers) => answers,
         Err(StoreError::Other(_)) if batches.len() > 1 => batches
             .iter()
             .map(|batch| {
-                attempt(settings, open, connection, std::slice::from_ref(batch))
+                attempt(settings, connection, std::slice::from_ref(batch))
                     .and_then(|mut answer| answer.remove(0))
             })
             .collect(),
@@ -293,13 +288,12 @@ fn store_turn(
 /// One transaction for `batches`, on the kept connection.
 fn attempt(
     settings: &WriterSettings,
-    open: Open,
     slot: &mut Option<Connection>,
     batches: &[(Vec<NewReading>, i64)],
 ) -> Result<Vec<BatchAnswer>, StoreError> {
     let connection = match slot {
         Some(connection) => connection,
-        None => slot.insert(settings.open(open)?),
+        None => slot.insert(settings.open()?),
     };
     let result = store_batches(connection, batches, settings.history_ms);
     // SQLite rolls a transaction back by itself on some errors (a full disk, an I/O error); a
@@ -311,7 +305,7 @@ fn attempt(
 }
 
 impl WriterSettings {
-    fn open(&self, how: Open) -> Result<Connection, StoreError> {
+    fn open(&self) -> Result<Connection, StoreError> {
         let access = if self.read_only {
             OpenFlags::SQLITE_OPEN_READ_ONLY
         } else {
@@ -331,7 +325,7 @@ impl WriterSettings {
         // load runs stored the burst 20-40 % faster with it (BENCHMARKS.md, "Load"); 256 MiB was
         // no faster there.
         connection.pragma_update(None, "cache_size", WRITER_CACHE_KIB)?;
-        if !how.automatic_checkpoint {
+        if !self.automatic_checkpoint {
             // Checkpoints are the checkpoint thread's (`checkpoint_on_request`).
             connection.pragma_update(None, "wal_autocheckpoint", 0)?;
         }
@@ -374,7 +368,8 @@ const STATION_SQL: &str = "SELECT s.id, s.area_id, a.interval_ms FROM stations s
 const QUANTITY_SQL: &str = "SELECT id FROM quantities WHERE key = ?1";
 const ADD_QUANTITY_SQL: &str =
     "INSERT INTO quantities (key) VALUES (?1) ON CONFLICT (key) DO NOTHING";
-/// The highest revision of one key: a backward probe of the readings' unique index.
+/// The highest revision of one key: one search of an index on the key, read in revision order with
+/// no sort (`current_revision_is_one_index_search`).
 const CURRENT_SQL: &str = "SELECT revision, value, value_as_sent, unit_as_sent FROM readings \
      WHERE observed_at_ms = ?1 AND station_id = ?2 AND quantity_id = ?3 \
      ORDER BY revision DESC LIMIT 1";
@@ -481,26 +476,45 @@ fn store_batches(
     Ok(answers)
 }
 
+/// Runs `statement` once per key, with the parameters `parameters` makes of it, and keeps in
+/// `found` what `read` makes of the row of each key that has one.
+fn found_per_key<K, P, V>(
+    statement: &mut rusqlite::CachedStatement<'_>,
+    keys: impl IntoIterator<Item = K>,
+    parameters: impl Fn(&K) -> P,
+    read: impl Fn(&rusqlite::Row<'_>) -> rusqlite::Result<V>,
+    found: &mut HashMap<K, V>,
+) -> rusqlite::Result<()>
+where
+    K: Eq + std::hash::Hash,
+    P: rusqlite::Params,
+{
+    for key in keys {
+        if let Some(value) = statement.query_row(parameters(&key), &read).optional()? {
+            found.insert(key, value);
+        }
+    }
+    Ok(())
+}
+
 fn lookup_stations(
     tx: &rusqlite::Transaction<'_>,
     keys: &[String],
 ) -> Result<HashMap<String, StationRef>, StoreError> {
-    let mut statement = tx.prepare_cached(STATION_SQL)?;
     let mut found = HashMap::with_capacity(keys.len());
-    for key in keys {
-        let station = statement
-            .query_row([key], |row| {
-                Ok(StationRef {
-                    station_id: row.get(0)?,
-                    area_id: row.get(1)?,
-                    interval_ms: row.get(2)?,
-                })
+    found_per_key(
+        &mut tx.prepare_cached(STATION_SQL)?,
+        keys.iter().cloned(),
+        |key| [key.clone()],
+        |row| {
+            Ok(StationRef {
+                station_id: row.get(0)?,
+                area_id: row.get(1)?,
+                interval_ms: row.get(2)?,
             })
-            .optional()?;
-        if let Some(station) = station {
-            found.insert(key.clone(), station);
-        }
-    }
+        },
+        &mut found,
+    )?;
     Ok(found)
 }
 
@@ -510,28 +524,27 @@ fn ensure_quantities(
     keys: &[String],
 ) -> Result<HashMap<String, i64>, StoreError> {
     let mut select = tx.prepare_cached(QUANTITY_SQL)?;
-    let mut lookup = |keys: &[String], found: &mut HashMap<String, i64>| -> rusqlite::Result<()> {
-        for key in keys {
-            if let Some(id) = select.query_row([key], |row| row.get(0)).optional()? {
-                found.insert(key.clone(), id);
-            }
-        }
-        Ok(())
-    };
     let mut found = HashMap::with_capacity(keys.len());
-    lookup(keys, &mut found)?;
+    let id = |row: &rusqlite::Row<'_>| row.get(0);
+    found_per_key(
+        &mut select,
+        keys.iter().cloned(),
+        |key| [key.clone()],
+        id,
+        &mut found,
+    )?;
     let missing = missing_keys(keys, &found);
     if !missing.is_empty() {
         let mut add = tx.prepare_cached(ADD_QUANTITY_SQL)?;
         for key in &missing {
             add.execute([key])?;
         }
-        lookup(&missing, &mut found)?;
+        found_per_key(&mut select, missing, |key| [key.clone()], id, &mut found)?;
     }
     Ok(found)
 }
 
-/// The current revision of every distinct key of the batches, one index probe per key.
+/// The current revision of every distinct key of the batches, one index search per key.
 fn current_values(
     tx: &rusqlite::Transaction<'_>,
     resolved: &[(Vec<ResolvedReading<'_>>, i64)],
@@ -542,29 +555,54 @@ fn current_values(
         .collect();
     keys.sort_unstable();
     keys.dedup();
-    let mut statement = tx.prepare_cached(CURRENT_SQL)?;
-    let mut current = HashMap::new();
-    for key in keys {
-        let found = statement
-            .query_row([key.0, key.1, key.2], |row| {
-                Ok(CurrentValue {
-                    revision: row.get(0)?,
-                    value: row.get(1)?,
-                    value_as_sent: row.get(2)?,
-                    unit_as_sent: row.get(3)?,
-                })
+    let mut current = HashMap::with_capacity(keys.len());
+    found_per_key(
+        &mut tx.prepare_cached(CURRENT_SQL)?,
+        keys,
+        |&(observed_at_ms, station_id, quantity_id)| [observed_at_ms, station_id, quantity_id],
+        |row| {
+            Ok(CurrentValue {
+                revision: row.get(0)?,
+                value: row.get(1)?,
+                value_as_sent: row.get(2)?,
+                unit_as_sent: row.get(3)?,
             })
-            .optional()?;
-        if let Some(value) = found {
-            current.insert(key, value);
-        }
-    }
+        },
+        &mut current,
+    )?;
     Ok(current)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// `EXPLAIN QUERY PLAN` of the current-revision query on the migrated schema: a `SEARCH` on all
+    /// three key columns, no `SCAN`, and no `USE TEMP B-TREE` for the `ORDER BY` (the output's
+    /// vocabulary is SQLite's, sqlite.org "EXPLAIN QUERY PLAN"). Either index starting with the
+    /// key's columns (`readings_key`, `readings_by_station`) serves it.
+    #[tokio::test]
+    async fn current_revision_is_one_index_search() {
+        let database = crate::testing::TestDatabase::sqlite();
+        let store = database.open().await;
+        let file = database.directory().expect("a file").join("consensor.db");
+        let connection = Connection::open(&file).expect("open");
+        let plan: Vec<String> = connection
+            .prepare(&format!("EXPLAIN QUERY PLAN {CURRENT_SQL}"))
+            .expect("explain")
+            .query_map([1_i64, 2, 3], |row| row.get(3))
+            .expect("plan")
+            .collect::<Result<_, _>>()
+            .expect("rows");
+        assert_eq!(plan.len(), 1, "{plan:?}");
+        assert!(plan[0].starts_with("SEARCH readings USING"), "{plan:?}");
+        for column in ["observed_at_ms=?", "station_id=?", "quantity_id=?"] {
+            assert!(plan[0].contains(column), "{column} not searched: {plan:?}");
+        }
+        drop(connection);
+        crate::Store::close(&store).await;
+        database.finish().await;
+    }
 
     #[test]
     fn reads_the_mode_of_a_database_url() {
