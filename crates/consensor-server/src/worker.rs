@@ -1,7 +1,7 @@
 //! The consensus worker: a loop around a public step, [`run_once`], that claims pending intervals,
 //! decides each with the core's checks and estimators, and stores the result as a new revision
-//! together with its set-aside list; neighbouring intervals of one area are loaded with one query
-//! and stored in one transaction.
+//! together with its set-aside list; neighbouring intervals of one area are loaded with one query,
+//! and the results of a step, of all its areas, are stored a few dozen per transaction.
 //!
 //! Ingest, review decisions and recompute requests mark (area, quantity, interval) buckets pending in
 //! the same transaction as their own change; the worker only ever reads that queue. On PostgreSQL
@@ -69,8 +69,9 @@ pub struct Outcome {
 
 /// One step: claims up to `claim_batch` pending buckets and computes each. Claimed buckets of one
 /// area and quantity whose history windows meet form a run: the run's readings are loaded with one
-/// query, every interval of it is decided from its own window of them (exactly the readings a load
-/// of that interval alone would give), and the run's results are stored a few dozen per transaction.
+/// query, and every interval of it is decided from its own window of them (exactly the readings a
+/// load of that interval alone would give). The step's results, of all its runs, are stored
+/// [`STORE_CHUNK`] per transaction as runs are decided.
 pub async fn run_once(
     state: &AppState,
     settings: &WorkerSettings,
@@ -89,21 +90,12 @@ pub async fn run_once(
         .await
         .context("could not claim pending intervals")?;
     let rules = &state.config.rules;
-    let mut outcome = Outcome::default();
-    // Up to RUNS_AT_ONCE runs are in hand at a time, so that one run's reading and deciding overlap
-    // another's storing. Every run is awaited, even after one has failed, so that no run is still
-    // storing when the caller releases this worker's claims.
+    // Up to RUNS_AT_ONCE runs are read and decided at a time, overlapping the storing of those
+    // decided before them. Every run is awaited, even after one has failed, so that no run is
+    // still in hand when the caller releases this worker's claims.
     let mut in_flight = tokio::task::JoinSet::new();
+    let mut decided = DecidedRuns::default();
     let mut failure: Option<anyhow::Error> = None;
-    let mut settle = |joined: Result<anyhow::Result<usize>, tokio::task::JoinError>| match joined {
-        Ok(Ok(computed)) => outcome.computed += computed,
-        Ok(Err(error)) => {
-            failure.get_or_insert(error);
-        }
-        Err(error) => {
-            failure.get_or_insert(anyhow::anyhow!("an interval run panicked: {error}"));
-        }
-    };
     for run in runs(buckets, rules) {
         let Some(spec) = state.config.quantity(&run[0].quantity).cloned() else {
             // A quantity removed from the configuration after its readings were stored: the claim
@@ -113,18 +105,113 @@ pub async fn run_once(
         };
         if in_flight.len() >= RUNS_AT_ONCE {
             if let Some(joined) = in_flight.join_next().await {
-                settle(joined);
+                decided.settle(joined, &mut failure);
+            }
+        }
+        if failure.is_none() && decided.intervals() >= STORE_CHUNK {
+            if let Err(error) = decided.store(state).await {
+                failure.get_or_insert(error);
             }
         }
         let state = state.clone();
-        in_flight.spawn(async move { compute_run(&state, run, spec).await });
+        in_flight.spawn(async move { decide_loaded_run(&state, run, spec).await });
     }
     while let Some(joined) = in_flight.join_next().await {
-        settle(joined);
+        decided.settle(joined, &mut failure);
     }
-    match failure {
-        Some(error) => Err(error),
-        None => Ok(outcome),
+    let computed = match failure {
+        Some(error) => return Err(error),
+        None => decided.store(state).await?,
+    };
+    Ok(Outcome { computed })
+}
+
+/// Runs decided and not yet stored, in the order they were decided.
+#[derive(Default)]
+struct DecidedRuns {
+    runs: Vec<DecidedRun>,
+    /// Intervals stored so far in this step.
+    stored: usize,
+}
+
+/// One run's buckets, their decisions and how long reading and deciding them took.
+struct DecidedRun {
+    buckets: Vec<ClaimedBucket>,
+    decided: Vec<Decided>,
+    seconds: f64,
+}
+
+impl DecidedRuns {
+    fn intervals(&self) -> usize {
+        self.runs.iter().map(|run| run.buckets.len()).sum()
+    }
+
+    /// Keeps a finished run's decisions, or its failure (the first failure of the step is kept).
+    fn settle(
+        &mut self,
+        joined: Result<anyhow::Result<DecidedRun>, tokio::task::JoinError>,
+        failure: &mut Option<anyhow::Error>,
+    ) {
+        match joined {
+            Ok(Ok(run)) => self.runs.push(run),
+            Ok(Err(error)) => {
+                failure.get_or_insert(error);
+            }
+            Err(error) => {
+                failure.get_or_insert(anyhow::anyhow!("an interval run panicked: {error}"));
+            }
+        }
+    }
+
+    /// Stores every decided interval in hand, [`STORE_CHUNK`] per transaction, and records each
+    /// in the metrics; returns how many intervals this step has stored in all.
+    async fn store(&mut self, state: &AppState) -> anyhow::Result<usize> {
+        let runs = std::mem::take(&mut self.runs);
+        let to_store: Vec<(ResultToStore<'_>, f64)> = runs
+            .iter()
+            .flat_map(|run| {
+                let per_interval = run.seconds / run.buckets.len() as f64;
+                run.buckets
+                    .iter()
+                    .zip(&run.decided)
+                    .map(move |(bucket, decided)| {
+                        (
+                            ResultToStore {
+                                bucket,
+                                outcome: &decided.outcome,
+                                station_ids: &decided.station_ids,
+                                reasons: &decided.reasons,
+                            },
+                            per_interval,
+                        )
+                    })
+            })
+            .collect();
+        for chunk in to_store.chunks(STORE_CHUNK) {
+            let started = std::time::Instant::now();
+            let results: Vec<ResultToStore<'_>> = chunk.iter().map(|(result, _)| *result).collect();
+            let stored = state
+                .store
+                .store_results(&results, state.clock.now_ms())
+                .await
+                .context("could not store an interval's result")?;
+            let storing = started.elapsed().as_secs_f64() / chunk.len() as f64;
+            for ((result, deciding), stored) in chunk.iter().zip(&stored) {
+                crate::metrics::record_bucket_computed(
+                    deciding + storing,
+                    &crate::metrics::set_aside_by_rule(result.outcome),
+                );
+                tracing::debug!(
+                    area = %result.bucket.area_key,
+                    quantity = %result.bucket.quantity,
+                    start = result.bucket.bucket_start_ms,
+                    revision = stored.revision,
+                    "interval computed"
+                );
+            }
+            self.stored += stored.len();
+        }
+        Ok(self.stored)
     }
 }
 
@@ -189,6 +276,19 @@ async fn compute_run(
     run: Vec<ClaimedBucket>,
     spec: QuantitySpec,
 ) -> anyhow::Result<usize> {
+    let mut decided = DecidedRuns::default();
+    decided
+        .runs
+        .push(decide_loaded_run(state, run, spec).await?);
+    decided.store(state).await
+}
+
+/// Loads one run of neighbouring buckets and decides each of its intervals.
+async fn decide_loaded_run(
+    state: &AppState,
+    run: Vec<ClaimedBucket>,
+    spec: QuantitySpec,
+) -> anyhow::Result<DecidedRun> {
     let started = std::time::Instant::now();
     let (first, last) = (&run[0], &run[run.len() - 1]);
     let rules = state.config.rules.clone();
@@ -203,49 +303,17 @@ async fn compute_run(
         .await
         .context("could not load an interval's readings")?;
     // The statistics run on the blocking pool, off the async threads that serve requests.
-    let (run, decided) = tokio::task::spawn_blocking(move || {
+    let (buckets, decided) = tokio::task::spawn_blocking(move || {
         let decided = decide_run(&run, &spec, &rules, &data);
         (run, decided)
     })
     .await
     .context("the interval computation panicked")?;
-    let to_store: Vec<ResultToStore<'_>> = run
-        .iter()
-        .zip(&decided)
-        .map(|(bucket, decided)| ResultToStore {
-            bucket,
-            outcome: &decided.outcome,
-            station_ids: &decided.station_ids,
-            reasons: &decided.reasons,
-        })
-        .collect();
-    let mut stored = Vec::with_capacity(to_store.len());
-    for chunk in to_store.chunks(STORE_CHUNK) {
-        stored.extend(
-            state
-                .store
-                .store_results(chunk, state.clock.now_ms())
-                .await
-                .context("could not store an interval's result")?,
-        );
-    }
-    let per_interval = started.elapsed().as_secs_f64() / run.len() as f64;
-    for decided in &decided {
-        crate::metrics::record_bucket_computed(
-            per_interval,
-            &crate::metrics::set_aside_by_rule(&decided.outcome),
-        );
-    }
-    for (bucket, stored) in run.iter().zip(&stored) {
-        tracing::debug!(
-            area = %bucket.area_key,
-            quantity = %bucket.quantity,
-            start = bucket.bucket_start_ms,
-            revision = stored.revision,
-            "interval computed"
-        );
-    }
-    Ok(stored.len())
+    Ok(DecidedRun {
+        buckets,
+        decided,
+        seconds: started.elapsed().as_secs_f64(),
+    })
 }
 
 /// Splits claimed buckets into runs: buckets of one area and quantity, in time order, where each
@@ -289,8 +357,8 @@ pub async fn run_until_idle(
 }
 
 /// The worker loop: steps while there is work, waits `poll_interval` when idle, and ends once
-/// `stop` turns true (after the step in hand: each run of intervals is stored in one transaction, so
-/// stopping between two never leaves a half-stored result).
+/// `stop` turns true (after the step in hand: each result is stored whole in one transaction with
+/// others, so stopping between two steps never leaves a half-stored result).
 pub async fn run(
     state: AppState,
     settings: WorkerSettings,
