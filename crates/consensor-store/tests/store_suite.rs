@@ -103,6 +103,7 @@ on_both_backends!(
     same_batch_twice_is_stored_once,
     changed_value_is_a_revision_and_the_old_one_stays_readable,
     repeated_key_within_one_batch,
+    each_key_of_a_resent_batch_meets_its_own_current_revision,
     unknown_station_refuses_the_whole_batch,
     failure_midway_through_a_batch_stores_nothing,
     pending_buckets_are_marked_with_interval_starts,
@@ -591,6 +592,91 @@ async fn repeated_key_within_one_batch(store: &AnyStore, _database: &TestDatabas
         .expect("again");
     // The null reading is stored already, so resending it is a duplicate.
     assert_eq!(again.duplicates, 1);
+}
+
+/// A resent batch whose keys of one station lie close together (one span of time) and far apart
+/// (several spans), with stored readings between them that the batch does not name: each key is
+/// judged against its own highest revision, and a stored key the batch leaves out counts for
+/// nothing. (The rule is the contract's: same key and same value is a duplicate, a changed value a
+/// new revision; API.md, "Ingest".)
+async fn each_key_of_a_resent_batch_meets_its_own_current_revision(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network(store).await;
+    const SECOND: i64 = 1_000;
+    const MINUTE: i64 = 60 * SECOND;
+    let stored = [
+        reading("ST-1", "air_temperature", BASE_MS, 13.0),
+        reading("ST-1", "air_temperature", BASE_MS + 30 * SECOND, 13.5),
+        reading("ST-1", "air_temperature", BASE_MS + 35 * SECOND, 13.7),
+        reading("ST-1", "air_temperature", BASE_MS + 10 * MINUTE, 14.0),
+        reading("ST-1", "air_temperature", BASE_MS + 20 * MINUTE, 15.0),
+        reading("ST-2", "air_temperature", BASE_MS, 20.0),
+    ];
+    store.insert_batch(&stored, NOW_MS).await.expect("first");
+    // A second revision of the key at 30 s.
+    let corrected = reading("ST-1", "air_temperature", BASE_MS + 30 * SECOND, 13.6);
+    store
+        .insert_batch(std::slice::from_ref(&corrected), NOW_MS + 1)
+        .await
+        .expect("correction");
+
+    let resent = vec![
+        // Near one another: 0 s, 30 s and 40 s. The stored key at 35 s is not resent.
+        reading("ST-1", "air_temperature", BASE_MS, 13.0),
+        corrected.clone(),
+        reading("ST-1", "air_temperature", BASE_MS + 40 * SECOND, 13.8),
+        // Ten minutes later: a changed value and a new key a second after it.
+        reading("ST-1", "air_temperature", BASE_MS + 10 * MINUTE, 14.5),
+        reading(
+            "ST-1",
+            "air_temperature",
+            BASE_MS + 10 * MINUTE + SECOND,
+            14.1,
+        ),
+        // Twenty-two minutes: new; the stored key at twenty is not resent.
+        reading("ST-1", "air_temperature", BASE_MS + 22 * MINUTE, 15.2),
+        // Another station at the same time as the first key.
+        reading("ST-2", "air_temperature", BASE_MS, 20.0),
+    ];
+    let outcome = store
+        .insert_batch(&resent, NOW_MS + 2)
+        .await
+        .expect("resent");
+    // Duplicates: 0 s (revision 0), 30 s (its current revision 1, not revision 0) and ST-2.
+    // New: 40 s, 10 min + 1 s, 22 min; and 10 min is revised.
+    assert_eq!(
+        outcome,
+        BatchOutcome {
+            accepted: 4,
+            duplicates: 3,
+            revised: 1
+        }
+    );
+    for (at_ms, expected) in [
+        (
+            BASE_MS + 30 * SECOND,
+            vec![(0, Some(13.5)), (1, Some(13.6))],
+        ),
+        (
+            BASE_MS + 10 * MINUTE,
+            vec![(0, Some(14.0)), (1, Some(14.5))],
+        ),
+        (BASE_MS + 35 * SECOND, vec![(0, Some(13.7))]),
+    ] {
+        let key = ReadingKey {
+            station: "ST-1".to_owned(),
+            quantity: "air_temperature".to_owned(),
+            observed_at_ms: at_ms,
+        };
+        let revisions = store.reading_revisions(&key).await.expect("revisions");
+        let found: Vec<(i64, Option<f64>)> =
+            revisions.iter().map(|r| (r.revision, r.value)).collect();
+        assert_eq!(found, expected, "{key:?}");
+    }
+    // 6 + 1 stored before, 4 now.
+    assert_eq!(store.count_readings().await.expect("count"), 11);
 }
 
 async fn unknown_station_refuses_the_whole_batch(store: &AnyStore, _database: &TestDatabase) {
