@@ -257,6 +257,37 @@ async fn current_values(
     Ok(current)
 }
 
+/// The token with this hash, unless it has been revoked (SQLite reads it through its direct
+/// reader, `sqlite_read.rs`, with the same SQL).
+async fn find_token_by_hash(pool: &PgPool, hash: &[u8]) -> Result<Option<Token>, StoreError> {
+    let row = sqlx::query(
+        "SELECT id, role, label, created_at_ms, revoked_at_ms FROM tokens \
+         WHERE hash = $1 AND revoked_at_ms IS NULL",
+    )
+    .bind(hash)
+    .fetch_optional(pool)
+    .await?;
+    let Some(row) = row else {
+        return Ok(None);
+    };
+    let id: String = row.try_get(0)?;
+    let stations: Vec<(String,)> = sqlx::query_as(
+        "SELECT station_key FROM token_stations WHERE token_id = $1 \
+         ORDER BY station_key",
+    )
+    .bind(&id)
+    .fetch_all(pool)
+    .await?;
+    Ok(Some(Token {
+        id,
+        role: row.try_get(1)?,
+        label: row.try_get(2)?,
+        stations: stations.into_iter().map(|(key,)| key).collect(),
+        created_at_ms: row.try_get(3)?,
+        revoked_at_ms: row.try_get(4)?,
+    }))
+}
+
 impl Store for PostgresStore {
     async fn ping(&self) -> Result<(), StoreError> {
         shared::ping(&self.pool, &MIGRATOR).await
@@ -302,7 +333,7 @@ impl Store for PostgresStore {
     }
 
     async fn find_token_by_hash(&self, hash: &[u8]) -> Result<Option<Token>, StoreError> {
-        shared::find_token_by_hash(&self.pool, hash).await
+        find_token_by_hash(&self.pool, hash).await
     }
 
     async fn revoke_token(&self, id: &str, now_ms: i64) -> Result<(), StoreError> {

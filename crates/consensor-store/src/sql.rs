@@ -10,7 +10,7 @@ macro_rules! shared_queries {
 
             use crate::{
                 Area, NewArea, NewStation, NewToken, ReadingKey, Station, StoreError,
-                StoredReading, Token, Upserted,
+                StoredReading, Upserted,
             };
 
             /// Reachable, and every embedded migration applied successfully.
@@ -196,39 +196,6 @@ macro_rules! shared_queries {
                     insert.build().execute(&mut *connection).await?;
                 }
                 Ok(())
-            }
-
-            /// The token with this hash, unless it has been revoked.
-            pub(crate) async fn find_token_by_hash(
-                pool: &Pool<$database>,
-                hash: &[u8],
-            ) -> Result<Option<Token>, StoreError> {
-                let row: Option<(String, String, Option<String>, i64, Option<i64>)> =
-                    sqlx::query_as(
-                        "SELECT id, role, label, created_at_ms, revoked_at_ms FROM tokens \
-                         WHERE hash = $1 AND revoked_at_ms IS NULL",
-                    )
-                    .bind(hash)
-                    .fetch_optional(pool)
-                    .await?;
-                let Some((id, role, label, created_at_ms, revoked_at_ms)) = row else {
-                    return Ok(None);
-                };
-                let stations: Vec<(String,)> = sqlx::query_as(
-                    "SELECT station_key FROM token_stations WHERE token_id = $1 \
-                     ORDER BY station_key",
-                )
-                .bind(&id)
-                .fetch_all(pool)
-                .await?;
-                Ok(Some(Token {
-                    id,
-                    role,
-                    label,
-                    stations: stations.into_iter().map(|(key,)| key).collect(),
-                    created_at_ms,
-                    revoked_at_ms,
-                }))
             }
 
             /// Marks the token revoked. Revoking it again keeps the first revocation time.

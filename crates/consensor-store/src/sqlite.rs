@@ -184,35 +184,6 @@ impl SqliteStore {
     }
 }
 
-async fn lookup_stations(
-    tx: &mut Transaction<'static, Sqlite>,
-    keys: &[String],
-) -> Result<HashMap<String, StationRef>, sqlx::Error> {
-    let mut found = HashMap::with_capacity(keys.len());
-    for chunk in keys.chunks(SQLITE_MAX_PARAMETERS) {
-        let mut query = QueryBuilder::<Sqlite>::new(
-            "SELECT s.key, s.id, s.area_id, a.interval_ms FROM stations s \
-             JOIN areas a ON a.id = s.area_id WHERE s.key IN (",
-        );
-        let mut separated = query.separated(", ");
-        for key in chunk {
-            separated.push_bind(key.as_str());
-        }
-        query.push(")");
-        for row in query.build().fetch_all(&mut **tx).await? {
-            found.insert(
-                row.try_get::<String, _>(0)?,
-                StationRef {
-                    station_id: row.try_get(1)?,
-                    area_id: row.try_get(2)?,
-                    interval_ms: row.try_get(3)?,
-                },
-            );
-        }
-    }
-    Ok(found)
-}
-
 impl Store for SqliteStore {
     async fn ping(&self) -> Result<(), StoreError> {
         shared::ping(&self.pool, &MIGRATOR).await
@@ -244,10 +215,7 @@ impl Store for SqliteStore {
         &self,
         keys: &[String],
     ) -> Result<HashMap<String, StationRef>, StoreError> {
-        let mut tx = self.pool.begin().await?;
-        let found = lookup_stations(&mut tx, &distinct_sorted(keys)).await?;
-        tx.commit().await?;
-        Ok(found)
+        self.direct.station_keys_lookup(distinct_sorted(keys)).await
     }
 
     async fn insert_token(&self, token: &NewToken) -> Result<(), StoreError> {
@@ -257,8 +225,9 @@ impl Store for SqliteStore {
         Ok(())
     }
 
+    /// Through the direct reader (`sqlite_read.rs`), as every request's token is.
     async fn find_token_by_hash(&self, hash: &[u8]) -> Result<Option<Token>, StoreError> {
-        shared::find_token_by_hash(&self.pool, hash).await
+        self.direct.find_token_by_hash(hash).await
     }
 
     async fn revoke_token(&self, id: &str, now_ms: i64) -> Result<(), StoreError> {

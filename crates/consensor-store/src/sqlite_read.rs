@@ -1,27 +1,37 @@
-//! The worker's bulk read on SQLite, through read-only connections of its own.
+//! The hot reads on SQLite, through read-only connections of their own: the worker's bulk read, and
+//! the two lookups every batch of readings makes before it is stored (its token, its stations).
 //!
 //! sqlx runs each SQLite connection on a thread of its own and hands every row over to the caller
 //! through a channel, copying each value: about 3 µs a row, where SQLite itself steps through the
 //! worker's index at about 0.2 µs (BENCHMARKS.md, "Worker"). The worker reads hundreds of thousands of
 //! rows per run of intervals, so this one read goes through rusqlite instead, on the blocking pool,
 //! with the same SQL text and the same assembly of rows as the sqlx read (`results.rs`), and it
-//! reads its three queries in one transaction, so they see one snapshot. (Batches of readings are
-//! written through a connection of their own too: `sqlite_write.rs`.)
+//! reads its three queries in one transaction, so they see one snapshot. A gateway's token and its
+//! batch each name a hundred stations, read on every request; under a burst those reads waited in
+//! the pool's queue behind dashboards and the worker, about 12 ms for the token alone at the
+//! median (BENCHMARKS.md, "Load"), so they come here too. Each read is a transaction of its own, so
+//! a revoked token is refused from the next request on. (Batches of readings are written through
+//! a connection of their own too: `sqlite_write.rs`.)
 
+use std::collections::HashMap;
 use std::path::PathBuf;
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
-use rusqlite::{Connection, OpenFlags};
+use rusqlite::{Connection, OpenFlags, OptionalExtension};
+use tokio::sync::Semaphore;
 
 use crate::results::{
     assemble_series, overturned_of, IntervalData, ReadingRow, LOAD_READINGS_SQL, LOAD_REVIEWS_SQL,
     LOAD_STATIONS_SQL,
 };
-use crate::StoreError;
+use crate::{StationRef, StoreError, Token};
 
-/// Idle connections kept for the next read: one per worker step in flight is enough.
-const IDLE_CONNECTIONS: usize = 4;
+/// Reads in hand at once, each on a connection of its own; the connections are kept for the next
+/// reads. A read takes microseconds to a few milliseconds, so a few connections serve a burst of
+/// requests, and opening one per request would cost more than the read (SQLite parses the schema
+/// on a connection's first statement).
+const CONNECTIONS: usize = 6;
 
 /// Read-only connections to one SQLite file.
 #[derive(Debug)]
@@ -29,6 +39,8 @@ pub(crate) struct DirectReader {
     path: PathBuf,
     busy_timeout: Duration,
     idle: Mutex<Vec<Connection>>,
+    /// One permit per connection: a read waits for one before it takes a blocking thread.
+    permits: Semaphore,
 }
 
 impl DirectReader {
@@ -38,7 +50,34 @@ impl DirectReader {
             path: path.to_owned(),
             busy_timeout,
             idle: Mutex::new(Vec::new()),
+            permits: Semaphore::new(CONNECTIONS),
         })
+    }
+
+    /// Runs `read` on one of the reader's connections, on the blocking pool. A connection is kept
+    /// only after a clean read; one that failed is closed.
+    async fn with_connection<T: Send + 'static>(
+        self: &Arc<Self>,
+        read: impl FnOnce(&mut Connection) -> Result<T, StoreError> + Send + 'static,
+    ) -> Result<T, StoreError> {
+        let _permit = self
+            .permits
+            .acquire()
+            .await
+            .map_err(|_| StoreError::Other("the direct reader is closed".to_owned()))?;
+        let reader = Arc::clone(self);
+        tokio::task::spawn_blocking(move || {
+            let mut connection = reader.connection()?;
+            let value = read(&mut connection)?;
+            reader
+                .idle
+                .lock()
+                .unwrap_or_else(|poison| poison.into_inner())
+                .push(connection);
+            Ok(value)
+        })
+        .await
+        .map_err(|error| StoreError::Other(format!("the direct read panicked: {error}")))?
     }
 
     /// See `Store::load_interval`.
@@ -49,23 +88,60 @@ impl DirectReader {
         from_ms: i64,
         to_ms: i64,
     ) -> Result<IntervalData, StoreError> {
-        let reader = Arc::clone(self);
         let quantity = quantity.to_owned();
-        tokio::task::spawn_blocking(move || {
-            let mut connection = reader.connection()?;
-            let data = read(&mut connection, area_id, &quantity, from_ms, to_ms)?;
-            // A connection is kept only after a clean read; one that failed is closed.
-            let mut idle = reader
-                .idle
-                .lock()
-                .unwrap_or_else(|poison| poison.into_inner());
-            if idle.len() < IDLE_CONNECTIONS {
-                idle.push(connection);
-            }
-            Ok(data)
+        self.with_connection(move |connection| read(connection, area_id, &quantity, from_ms, to_ms))
+            .await
+    }
+
+    /// See `Store::find_token_by_hash`: the token and its stations in one read transaction.
+    pub(crate) async fn find_token_by_hash(
+        self: &Arc<Self>,
+        hash: &[u8],
+    ) -> Result<Option<Token>, StoreError> {
+        let hash = hash.to_owned();
+        self.with_connection(move |connection| {
+            let transaction = connection.transaction()?;
+            let token = transaction
+                .prepare_cached(TOKEN_SQL)?
+                .query_row([&hash], |row| {
+                    Ok(Token {
+                        id: row.get(0)?,
+                        role: row.get(1)?,
+                        label: row.get(2)?,
+                        stations: Vec::new(),
+                        created_at_ms: row.get(3)?,
+                        revoked_at_ms: row.get(4)?,
+                    })
+                })
+                .optional()?;
+            let token = match token {
+                Some(mut token) => {
+                    token.stations = transaction
+                        .prepare_cached(TOKEN_STATIONS_SQL)?
+                        .query_map([&token.id], |row| row.get(0))?
+                        .collect::<Result<_, _>>()?;
+                    Some(token)
+                }
+                None => None,
+            };
+            transaction.commit()?;
+            Ok(token)
         })
         .await
-        .map_err(|error| StoreError::Other(format!("the direct read panicked: {error}")))?
+    }
+
+    /// See `Store::station_keys_lookup`: one search of the stations' unique key per distinct key.
+    pub(crate) async fn station_keys_lookup(
+        self: &Arc<Self>,
+        keys: Vec<String>,
+    ) -> Result<HashMap<String, StationRef>, StoreError> {
+        self.with_connection(move |connection| {
+            let transaction = connection.transaction()?;
+            let found = crate::sqlite_write::lookup_stations(&transaction, &keys)?;
+            transaction.commit()?;
+            Ok(found)
+        })
+        .await
     }
 
     fn connection(&self) -> Result<Connection, StoreError> {
@@ -85,6 +161,13 @@ impl DirectReader {
         Ok(connection)
     }
 }
+
+/// The token with this hash, unless it has been revoked (as `sql.rs` has it for PostgreSQL).
+const TOKEN_SQL: &str = "SELECT id, role, label, created_at_ms, revoked_at_ms FROM tokens \
+     WHERE hash = ?1 AND revoked_at_ms IS NULL";
+/// A token's stations, sorted.
+const TOKEN_STATIONS_SQL: &str =
+    "SELECT station_key FROM token_stations WHERE token_id = ?1 ORDER BY station_key";
 
 /// The three queries of the worker's read, in one read transaction.
 fn read(

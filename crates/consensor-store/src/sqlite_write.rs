@@ -501,7 +501,9 @@ where
     Ok(())
 }
 
-fn lookup_stations(
+/// The stations of the given keys (in any order), with their area and its interval; a key with no
+/// station is left out.
+pub(crate) fn lookup_stations(
     tx: &rusqlite::Transaction<'_>,
     keys: &[String],
 ) -> Result<HashMap<String, StationRef>, StoreError> {
