@@ -107,6 +107,7 @@ on_both_backends!(
     unknown_station_refuses_the_whole_batch,
     failure_midway_through_a_batch_stores_nothing,
     pending_buckets_are_marked_with_interval_starts,
+    a_batch_after_a_change_of_the_network_marks_the_intervals_of_the_new_network,
     concurrent_identical_batches_store_each_reading_once,
     concurrent_small_batches_are_answered_each_on_its_own,
     tokens_insert_find_and_revoke,
@@ -855,6 +856,64 @@ async fn concurrent_small_batches_are_answered_each_on_its_own(
     assert!(
         !quantities.iter().any(|(key,)| key == "pm10"),
         "{quantities:?}"
+    );
+}
+
+/// A station moved to another area, and an area given another interval, between two batches: the
+/// second batch marks the intervals of the network as it is then (the SQLite writer keeps the
+/// stations it looked up between transactions and must notice both changes).
+async fn a_batch_after_a_change_of_the_network_marks_the_intervals_of_the_new_network(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network(store).await;
+    east_rise_with_st9(store).await;
+    const PENDING: &str = "SELECT a.key, p.bucket_start_ms FROM pending_buckets p \
+        JOIN areas a ON a.id = p.area_id ORDER BY a.key, p.bucket_start_ms";
+    let first = [
+        reading("ST-1", "air_temperature", BASE_MS, 10.0),
+        reading("ST-9", "air_temperature", BASE_MS, 11.0),
+    ];
+    store.insert_batch(&first, NOW_MS).await.expect("first");
+    assert_eq!(
+        fetch_all_raw!(store, (String, i64), PENDING),
+        vec![
+            ("east-rise".to_owned(), BASE_MS),
+            ("north-basin".to_owned(), BASE_MS),
+        ]
+    );
+
+    // ST-1 moves to east-rise; east-rise's intervals become 5 minutes.
+    store
+        .upsert_station(&station("ST-1", "east-rise"))
+        .await
+        .expect("move");
+    store
+        .upsert_area(&NewArea {
+            key: "east-rise".to_owned(),
+            name: "East rise".to_owned(),
+            interval_ms: 300_000,
+        })
+        .await
+        .expect("interval");
+    // 2 h after BASE_MS (a whole number of both intervals) plus 7 minutes: the 5-minute interval
+    // that starts at +2 h 5 min, where the 10-minute one would start at +2 h.
+    let later = BASE_MS + 2 * 3_600_000 + 7 * 60_000;
+    let second = [
+        reading("ST-1", "air_temperature", later, 10.5),
+        reading("ST-9", "air_temperature", later, 11.5),
+    ];
+    store
+        .insert_batch(&second, NOW_MS + 1)
+        .await
+        .expect("second");
+    assert_eq!(
+        fetch_all_raw!(store, (String, i64), PENDING),
+        vec![
+            ("east-rise".to_owned(), BASE_MS),
+            ("east-rise".to_owned(), later - 2 * 60_000),
+            ("north-basin".to_owned(), BASE_MS),
+        ]
     );
 }
 
