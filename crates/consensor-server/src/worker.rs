@@ -113,6 +113,11 @@ pub async fn run_once(
                 failure.get_or_insert(error);
             }
         }
+        if failure.is_some() {
+            // The step fails: the caller releases its claims, and what is neither stored nor
+            // started yet is claimed again at a later step.
+            break;
+        }
         let state = state.clone();
         in_flight.spawn(async move { decide_loaded_run(&state, run, spec).await });
     }
