@@ -7,9 +7,9 @@
 //! rows per run of intervals, so this one read goes through rusqlite instead, on the blocking pool,
 //! with the same SQL text and the same assembly of rows as the sqlx read (`results.rs`), and it
 //! reads its three queries in one transaction, so they see one snapshot. A gateway's token and its
-//! batch each name a hundred stations, read on every request; under a burst those reads waited in
-//! the pool's queue behind dashboards and the worker, about 12 ms for the token alone at the
-//! median (BENCHMARKS.md, "Load"), so they come here too. Each read is a transaction of its own, so
+//! batch each name a hundred stations, read on every request; through the pool, queued behind
+//! dashboards and the worker, the token read took 12 ms at the median over a load run's requests
+//! (BENCHMARKS.md, "Load"), so they come here too. Each read is a transaction of its own, so
 //! a revoked token is refused from the next request on. (Batches of readings are written through
 //! a connection of their own too: `sqlite_write.rs`.)
 
