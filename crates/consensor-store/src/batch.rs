@@ -13,6 +13,11 @@ use crate::{BatchOutcome, NewReading, StationRef, StoreError};
 /// unique index.
 pub(crate) type KeyIds = (i64, i64, i64);
 
+/// The maps of a batch's planning (its keys, stations and quantities, thousands of lookups a batch)
+/// hash with foldhash, seeded per process, rather than std's SipHash, which took about 6 % of the
+/// SQLite writer thread's time in the load test's burst (BENCHMARKS.md, "SQLite's build").
+pub(crate) type FastMap<K, V> = HashMap<K, V, foldhash::fast::RandomState>;
+
 /// The current (highest) revision stored for a key, with the fields that decide duplicates.
 #[derive(Debug, Clone, PartialEq)]
 pub(crate) struct CurrentValue {
@@ -45,8 +50,8 @@ impl ResolvedReading<'_> {
 /// caller has refused unknown stations and added unknown quantities).
 pub(crate) fn resolve<'a>(
     readings: &'a [NewReading],
-    stations: &HashMap<String, StationRef>,
-    quantities: &HashMap<String, i64>,
+    stations: &FastMap<String, StationRef>,
+    quantities: &FastMap<String, i64>,
 ) -> Vec<ResolvedReading<'a>> {
     readings
         .iter()
@@ -138,7 +143,7 @@ pub(crate) const MARK_FOLLOWING: &str = "INSERT INTO pending_buckets (area_id, q
 /// `history_ms` is the rules' history block (`Rules::history_ms`), for [`Following`].
 pub(crate) fn plan_batch(
     readings: &[ResolvedReading<'_>],
-    current: &mut HashMap<KeyIds, CurrentValue>,
+    current: &mut FastMap<KeyIds, CurrentValue>,
     history_ms: i64,
 ) -> BatchPlan {
     let mut plan = BatchPlan::default();
@@ -265,9 +270,9 @@ where
 }
 
 /// Returns the unknown keys of `wanted` (sorted, deduplicated) given what a lookup `found`.
-pub(crate) fn missing_keys<'a, V>(
+pub(crate) fn missing_keys<'a, V, S: std::hash::BuildHasher>(
     wanted: impl IntoIterator<Item = &'a String>,
-    found: &HashMap<String, V>,
+    found: &HashMap<String, V, S>,
 ) -> Vec<String> {
     let missing: BTreeSet<&String> = wanted
         .into_iter()
@@ -298,7 +303,7 @@ pub(crate) const CURRENT_VALUES_SELECT: &str =
      AND newer.quantity_id = r.quantity_id AND newer.revision > r.revision)";
 
 pub(crate) fn insert_current<R: Row>(
-    current: &mut HashMap<KeyIds, CurrentValue>,
+    current: &mut FastMap<KeyIds, CurrentValue>,
     row: &R,
 ) -> Result<(), sqlx::Error>
 where
@@ -361,7 +366,7 @@ mod tests {
         let same = reading(Some(13.9), Some("Cel"));
         let changed = reading(Some(14.2), Some("Cel"));
         let batch = [resolved(&first), resolved(&same), resolved(&changed)];
-        let plan = plan_batch(&batch, &mut HashMap::new(), HOURS_3);
+        let plan = plan_batch(&batch, &mut FastMap::default(), HOURS_3);
         assert_eq!(
             plan.outcome,
             BatchOutcome {
@@ -431,7 +436,7 @@ mod tests {
     fn revision_continues_from_stored_current_value() {
         // The stored current revision is 4, so a changed value becomes revision 5.
         let changed = reading(Some(1.5), None);
-        let mut current = HashMap::new();
+        let mut current = FastMap::default();
         current.insert(
             (600_000, 7, 2),
             CurrentValue {

@@ -11,7 +11,7 @@ use sqlx::{Postgres, Row, Transaction};
 
 use crate::batch::{
     distinct_sorted, insert_current, missing_keys, plan_batch, resolve, with_retries, AttemptError,
-    CurrentValue, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT, MARK_FOLLOWING,
+    CurrentValue, FastMap, KeyIds, ResolvedReading, CURRENT_VALUES_SELECT, MARK_FOLLOWING,
 };
 use crate::{
     Area, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken, ReadingKey,
@@ -179,7 +179,7 @@ impl PostgresStore {
 async fn lookup_stations(
     tx: &mut Transaction<'static, Postgres>,
     keys: &[String],
-) -> Result<HashMap<String, StationRef>, sqlx::Error> {
+) -> Result<FastMap<String, StationRef>, sqlx::Error> {
     let rows = sqlx::query(
         "SELECT s.key, s.id, s.area_id, a.interval_ms FROM stations s \
          JOIN areas a ON a.id = s.area_id WHERE s.key = ANY($1)",
@@ -187,7 +187,7 @@ async fn lookup_stations(
     .bind(keys)
     .fetch_all(&mut **tx)
     .await?;
-    let mut found = HashMap::with_capacity(rows.len());
+    let mut found = FastMap::with_capacity_and_hasher(rows.len(), Default::default());
     for row in rows {
         found.insert(
             row.try_get::<String, _>(0)?,
@@ -206,7 +206,7 @@ async fn lookup_stations(
 async fn ensure_quantities(
     tx: &mut Transaction<'static, Postgres>,
     keys: &[String],
-) -> Result<HashMap<String, i64>, sqlx::Error> {
+) -> Result<FastMap<String, i64>, sqlx::Error> {
     let mut found = lookup_quantities(tx, keys).await?;
     let missing = missing_keys(keys, &found);
     if !missing.is_empty() {
@@ -225,7 +225,7 @@ async fn ensure_quantities(
 async fn lookup_quantities(
     tx: &mut Transaction<'static, Postgres>,
     keys: &[String],
-) -> Result<HashMap<String, i64>, sqlx::Error> {
+) -> Result<FastMap<String, i64>, sqlx::Error> {
     let rows: Vec<(String, i64)> =
         sqlx::query_as("SELECT key, id FROM quantities WHERE key = ANY($1)")
             .bind(keys)
@@ -239,7 +239,7 @@ async fn lookup_quantities(
 async fn current_values(
     tx: &mut Transaction<'static, Postgres>,
     keys: &[KeyIds],
-) -> Result<HashMap<KeyIds, CurrentValue>, sqlx::Error> {
+) -> Result<FastMap<KeyIds, CurrentValue>, sqlx::Error> {
     let statement = format!(
         "WITH batch_keys (observed_at_ms, station_id, quantity_id) AS \
          (SELECT * FROM UNNEST($1::bigint[], $2::bigint[], $3::bigint[])) {CURRENT_VALUES_SELECT}"
@@ -250,7 +250,7 @@ async fn current_values(
         .bind(keys.iter().map(|key| key.2).collect::<Vec<_>>())
         .fetch_all(&mut **tx)
         .await?;
-    let mut current = HashMap::with_capacity(rows.len());
+    let mut current = FastMap::with_capacity_and_hasher(rows.len(), Default::default());
     for row in &rows {
         insert_current(&mut current, row)?;
     }
@@ -322,7 +322,7 @@ impl Store for PostgresStore {
         let mut tx = self.pool.begin().await?;
         let found = lookup_stations(&mut tx, &distinct_sorted(keys)).await?;
         tx.commit().await?;
-        Ok(found)
+        Ok(found.into_iter().collect())
     }
 
     async fn insert_token(&self, token: &NewToken) -> Result<(), StoreError> {

@@ -15,7 +15,7 @@
 //! same as on PostgreSQL; the statements are the point-wise forms of the multi-row ones the
 //! PostgreSQL store sends (`postgres.rs`).
 
-use std::collections::{BTreeSet, HashMap};
+use std::collections::BTreeSet;
 use std::path::{Path, PathBuf};
 use std::sync::{Arc, Condvar, Mutex};
 use std::time::Duration;
@@ -23,7 +23,7 @@ use std::time::Duration;
 use rusqlite::{Connection, OpenFlags, OptionalExtension, TransactionBehavior};
 
 use crate::batch::{
-    coalesce_following, distinct_sorted, missing_keys, plan_batch, resolve, CurrentValue,
+    coalesce_following, distinct_sorted, missing_keys, plan_batch, resolve, CurrentValue, FastMap,
     Following, KeyIds, ResolvedReading, MARK_FOLLOWING,
 };
 use crate::commit_group::{BatchAnswer, CommitQueue, WaitingBatch};
@@ -487,7 +487,7 @@ fn found_per_key<K, P, V>(
     keys: impl IntoIterator<Item = K>,
     parameters: impl Fn(&K) -> P,
     read: impl Fn(&rusqlite::Row<'_>) -> rusqlite::Result<V>,
-    found: &mut HashMap<K, V>,
+    found: &mut FastMap<K, V>,
 ) -> rusqlite::Result<()>
 where
     K: Eq + std::hash::Hash,
@@ -506,8 +506,8 @@ where
 pub(crate) fn lookup_stations(
     tx: &rusqlite::Transaction<'_>,
     keys: &[String],
-) -> Result<HashMap<String, StationRef>, StoreError> {
-    let mut found = HashMap::with_capacity(keys.len());
+) -> Result<FastMap<String, StationRef>, StoreError> {
+    let mut found = FastMap::with_capacity_and_hasher(keys.len(), Default::default());
     found_per_key(
         &mut tx.prepare_cached(STATION_SQL)?,
         keys.iter().cloned(),
@@ -528,9 +528,9 @@ pub(crate) fn lookup_stations(
 fn ensure_quantities(
     tx: &rusqlite::Transaction<'_>,
     keys: &[String],
-) -> Result<HashMap<String, i64>, StoreError> {
+) -> Result<FastMap<String, i64>, StoreError> {
     let mut select = tx.prepare_cached(QUANTITY_SQL)?;
-    let mut found = HashMap::with_capacity(keys.len());
+    let mut found = FastMap::with_capacity_and_hasher(keys.len(), Default::default());
     let id = |row: &rusqlite::Row<'_>| row.get(0);
     found_per_key(
         &mut select,
@@ -558,7 +558,7 @@ fn ensure_quantities(
 fn current_values(
     tx: &rusqlite::Transaction<'_>,
     resolved: &[(Vec<ResolvedReading<'_>>, i64)],
-) -> Result<HashMap<KeyIds, CurrentValue>, StoreError> {
+) -> Result<FastMap<KeyIds, CurrentValue>, StoreError> {
     // Station, quantity, time: the order of the spans.
     let mut keys: Vec<(i64, i64, i64)> = resolved
         .iter()
@@ -568,7 +568,7 @@ fn current_values(
     keys.sort_unstable();
     keys.dedup();
     let mut statement = tx.prepare_cached(CURRENT_SQL)?;
-    let mut current = HashMap::with_capacity(keys.len());
+    let mut current = FastMap::with_capacity_and_hasher(keys.len(), Default::default());
     let same_span = |a: &(i64, i64, i64), b: &(i64, i64, i64)| {
         (a.0, a.1) == (b.0, b.1) && b.2 - a.2 <= CURRENT_SPAN_GAP_MS
     };
