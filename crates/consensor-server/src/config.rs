@@ -305,6 +305,10 @@ struct RawWorker {
     open_interval_refresh_seconds: f64,
     #[serde(default = "default_settle")]
     settle_seconds: f64,
+    #[serde(default = "default_yield_above")]
+    yield_above_readings: usize,
+    #[serde(default = "default_yield_at_most")]
+    yield_at_most_seconds: f64,
 }
 
 impl Default for RawWorker {
@@ -317,6 +321,8 @@ impl Default for RawWorker {
             poll_interval_seconds: default_poll(),
             open_interval_refresh_seconds: default_open_refresh(),
             settle_seconds: default_settle(),
+            yield_above_readings: default_yield_above(),
+            yield_at_most_seconds: default_yield_at_most(),
         }
     }
 }
@@ -343,6 +349,14 @@ fn default_open_refresh() -> f64 {
 fn default_settle() -> f64 {
     crate::worker::WorkerSettings::default()
         .settle
+        .as_secs_f64()
+}
+fn default_yield_above() -> usize {
+    crate::worker::WorkerSettings::default().yield_above_readings
+}
+fn default_yield_at_most() -> f64 {
+    crate::worker::WorkerSettings::default()
+        .yield_at_most
         .as_secs_f64()
 }
 fn default_poll() -> f64 {
@@ -522,6 +536,11 @@ impl RawConfig {
                 self.worker.open_interval_refresh_seconds,
             )?,
             settle: seconds_or_zero("worker.settle_seconds", self.worker.settle_seconds)?,
+            yield_above_readings: self.worker.yield_above_readings,
+            yield_at_most: seconds_or_zero(
+                "worker.yield_at_most_seconds",
+                self.worker.yield_at_most_seconds,
+            )?,
         };
         Ok(Config {
             listen,
@@ -674,6 +693,33 @@ mod tests {
         assert_eq!(config.database_acquire_timeout, Duration::from_secs(10));
         assert_eq!(config.quantities.len(), 10);
         assert!(!config.public_read);
+    }
+
+    #[test]
+    fn the_worker_gives_way_to_bursts_by_default_and_may_be_told_not_to() {
+        // Our own settings: hold back above 10,000 readings in flight, for at most 10 s in a row.
+        let config = Config::load(None, env(&[]), &[]).unwrap();
+        assert_eq!(config.worker.yield_above_readings, 10_000);
+        assert_eq!(config.worker.yield_at_most, Duration::from_secs(10));
+        let off = Config::load(
+            None,
+            env(&[
+                ("CONSENSOR_WORKER__YIELD_ABOVE_READINGS", "0"),
+                ("CONSENSOR_WORKER__YIELD_AT_MOST_SECONDS", "2.5"),
+            ]),
+            &[],
+        )
+        .unwrap();
+        assert_eq!(off.worker.yield_above_readings, 0);
+        assert_eq!(off.worker.yield_at_most, Duration::from_millis(2_500));
+        let error = Config::load(
+            None,
+            env(&[("CONSENSOR_WORKER__YIELD_AT_MOST_SECONDS", "-1")]),
+            &[],
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(error.contains("worker.yield_at_most_seconds"), "{error}");
     }
 
     #[test]

@@ -16,6 +16,8 @@
 //! * `consensor_set_aside_total{rule}`: readings set aside by the worker, by rule.
 //! * `consensor_interval_compute_seconds`: histogram of the time to decide and store one interval.
 //! * `consensor_worker_step_failures_total`: worker steps that failed and were retried.
+//! * `consensor_worker_ingest_yields_total`: times the worker held its steps back while an ingest
+//!   burst was being stored (`worker.yield_above_readings`).
 //! * `consensor_http_request_duration_seconds{route, method, status}`: histogram of request
 //!   latency, labelled with the route *template* (`/v1/areas/{area}/series`, never the raw path,
 //!   so the number of series stays bounded; `unmatched` for requests no route matched).
@@ -119,6 +121,11 @@ pub fn set_aside_by_rule(outcome: &IntervalOutcome) -> Vec<(&'static str, u64)> 
 /// Counts a worker step that failed (and will be retried).
 pub fn record_worker_step_failed() {
     with_recorder(|| counter!("consensor_worker_step_failures_total").increment(1));
+}
+
+/// Counts one period in which the worker held its steps back for an ingest burst.
+pub fn record_worker_yielded() {
+    with_recorder(|| counter!("consensor_worker_ingest_yields_total").increment(1));
 }
 
 /// Middleware (`axum::middleware::from_fn`) that times every request and counts ingest refusals.
@@ -396,6 +403,11 @@ fn describe_and_zero() {
         Unit::Count,
         "Consensus worker steps that failed and were retried."
     );
+    describe_counter!(
+        "consensor_worker_ingest_yields_total",
+        Unit::Count,
+        "Times the consensus worker held its steps back while an ingest burst was stored."
+    );
     describe_histogram!(
         "consensor_interval_compute_seconds",
         Unit::Seconds,
@@ -410,6 +422,7 @@ fn describe_and_zero() {
     counter!("consensor_readings_duplicates_total").increment(0);
     counter!("consensor_readings_revised_total").increment(0);
     counter!("consensor_worker_step_failures_total").increment(0);
+    counter!("consensor_worker_ingest_yields_total").increment(0);
     for rule in Rule::ALL {
         counter!("consensor_set_aside_total", "rule" => rule.as_str()).increment(0);
     }

@@ -39,6 +39,7 @@ pub async fn open_state(config: Config, clock: Arc<dyn Clock>) -> anyhow::Result
         store,
         config: Arc::new(config),
         clock,
+        ingest: Arc::default(),
     })
 }
 

@@ -8,7 +8,7 @@
 //! several replicas run a worker each: claims use `FOR UPDATE SKIP LOCKED`, so no two compute the
 //! same bucket at once, and a claim older than `stale_after` (a crashed worker's) is taken over.
 
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use anyhow::Context;
 use consensor_core::checks::{
@@ -39,6 +39,13 @@ pub struct WorkerSettings {
     /// the same intervals has them computed once it has passed, not after every batch. Zero:
     /// computed as soon as claimed.
     pub settle: Duration,
+    /// While more readings than this are in this process's ingest requests (decoded, not yet
+    /// answered), the worker starts no step: an outage burst is stored first and computed after
+    /// ([`Yielding`]). Zero: never.
+    pub yield_above_readings: usize,
+    /// The longest the worker holds back in a row; after that it steps as usual until it has
+    /// found nothing to do once, so that a stream of large batches cannot starve it.
+    pub yield_at_most: Duration,
 }
 
 impl Default for WorkerSettings {
@@ -56,7 +63,57 @@ impl Default for WorkerSettings {
             // reading, and an outage burst was stored 4-13 % faster in alternating runs
             // (BENCHMARKS.md, "Load").
             settle: Duration::from_secs(1),
+            // Our own choice: two backlog batches of 5,000 waiting. Live stations' batches stay
+            // below it (1,000 stations posting each second held at most a few thousand in the
+            // load test); an outage burst goes above it. With the worker stepping during the burst
+            // the backlog batches' p99 was 316-361 ms, with it held back 254-267 ms
+            // (BENCHMARKS.md, "Load").
+            yield_above_readings: 10_000,
+            // Our own choice: well within the load test's bound of one minute for the worker to
+            // be back under one interval after a burst.
+            yield_at_most: Duration::from_secs(10),
         }
+    }
+}
+
+/// How often a worker holding back looks at the ingest load again.
+const YIELD_CHECK: Duration = Duration::from_millis(50);
+
+/// The worker's giving way to ingest: it waits while ingest is busy, for at most a bound in a row,
+/// and once it has waited that long it steps regardless until it has found nothing to do.
+#[derive(Debug, Default)]
+pub struct Yielding {
+    /// When the current wait began.
+    since: Option<Instant>,
+    /// The bound was reached: no more waiting until the worker has been idle.
+    spent: bool,
+}
+
+impl Yielding {
+    /// Whether to wait at `now` instead of stepping, with ingest `busy` or not.
+    pub fn should_wait(&mut self, busy: bool, at_most: Duration, now: Instant) -> bool {
+        if !busy || self.spent {
+            self.since = None;
+            return false;
+        }
+        let since = *self.since.get_or_insert(now);
+        if now.duration_since(since) < at_most {
+            return true;
+        }
+        self.spent = true;
+        self.since = None;
+        false
+    }
+
+    /// Whether a wait has just begun (the last [`Yielding::should_wait`] started one).
+    fn began_at(&self, now: Instant) -> bool {
+        self.since == Some(now)
+    }
+
+    /// The worker found nothing to do: it may give way again.
+    pub fn idle(&mut self) {
+        self.spent = false;
+        self.since = None;
     }
 }
 
@@ -369,10 +426,32 @@ pub async fn run(
     settings: WorkerSettings,
     mut stop: tokio::sync::watch::Receiver<bool>,
 ) {
+    let mut yielding = Yielding::default();
     while !*stop.borrow() {
+        let busy = settings.yield_above_readings > 0
+            && state.ingest.readings() > settings.yield_above_readings;
+        let at = Instant::now();
+        if yielding.should_wait(busy, settings.yield_at_most, at) {
+            if yielding.began_at(at) {
+                crate::metrics::record_worker_yielded();
+                tracing::debug!(
+                    readings_in_flight = state.ingest.readings(),
+                    "ingest burst: the worker holds its steps back"
+                );
+            }
+            tokio::select! {
+                _ = stop.changed() => {}
+                _ = tokio::time::sleep(YIELD_CHECK) => {}
+            }
+            continue;
+        }
         let now_ms = state.clock.now_ms();
         let idle = match run_once(&state, &settings, now_ms).await {
-            Ok(step) => step.computed == 0,
+            Ok(step) if step.computed == 0 => {
+                yielding.idle();
+                true
+            }
+            Ok(_) => false,
             Err(error) => {
                 crate::metrics::record_worker_step_failed();
                 tracing::warn!(error = format!("{error:#}"), "worker step failed; retrying");
@@ -489,4 +568,53 @@ fn decide_run(
             }
         })
         .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const AT_MOST: Duration = Duration::from_secs(10);
+
+    #[test]
+    fn the_worker_waits_only_while_ingest_is_busy() {
+        let start = Instant::now();
+        let mut yielding = Yielding::default();
+        assert!(!yielding.should_wait(false, AT_MOST, start));
+        assert!(yielding.should_wait(true, AT_MOST, start));
+        assert!(yielding.began_at(start));
+        let later = start + Duration::from_secs(3);
+        assert!(yielding.should_wait(true, AT_MOST, later));
+        assert!(!yielding.began_at(later), "the same wait goes on");
+        // The burst has been stored: the worker steps at once.
+        assert!(!yielding.should_wait(false, AT_MOST, later));
+        // A new burst starts a new wait with its own bound.
+        let next = start + Duration::from_secs(12);
+        assert!(yielding.should_wait(true, AT_MOST, next));
+        assert!(yielding.began_at(next));
+        assert!(yielding.should_wait(true, AT_MOST, next + Duration::from_secs(9)));
+    }
+
+    #[test]
+    fn a_wait_ends_at_its_bound_and_the_worker_steps_until_it_is_idle() {
+        let start = Instant::now();
+        let mut yielding = Yielding::default();
+        assert!(yielding.should_wait(true, AT_MOST, start));
+        assert!(!yielding.should_wait(true, AT_MOST, start + AT_MOST));
+        // Ingest still busy, but the bound was reached: no more waiting, however long it lasts.
+        for seconds in [11, 30, 300] {
+            let at = start + Duration::from_secs(seconds);
+            assert!(!yielding.should_wait(true, AT_MOST, at));
+        }
+        // Once the worker has found nothing to do, it gives way again.
+        yielding.idle();
+        let at = start + Duration::from_secs(301);
+        assert!(yielding.should_wait(true, AT_MOST, at));
+    }
+
+    #[test]
+    fn a_zero_bound_never_waits() {
+        let mut yielding = Yielding::default();
+        assert!(!yielding.should_wait(true, Duration::ZERO, Instant::now()));
+    }
 }

@@ -512,6 +512,7 @@ async fn output_follows_the_exposition_format(database: TestDatabase) {
         ("consensor_readings_duplicates_total", "counter"),
         ("consensor_readings_revised_total", "counter"),
         ("consensor_set_aside_total", "counter"),
+        ("consensor_worker_ingest_yields_total", "counter"),
         ("consensor_http_request_duration_seconds", "histogram"),
         ("consensor_db_pool_connections", "gauge"),
         ("consensor_db_pool_max_connections", "gauge"),

@@ -18,7 +18,8 @@ use consensor_store::{NewReading, ReviewDecision, SetAsideFilter, Store};
 on_both_backends!(
     worker_decides_revises_and_honours_overturns,
     neighbouring_intervals_decided_together_match_one_at_a_time,
-    an_ended_interval_is_computed_once_its_marks_have_settled
+    an_ended_interval_is_computed_once_its_marks_have_settled,
+    the_worker_loop_gives_way_to_an_ingest_burst_for_a_bounded_time
 );
 
 const MINUTE: i64 = 60_000;
@@ -260,6 +261,66 @@ async fn an_ended_interval_is_computed_once_its_marks_have_settled(database: Tes
     // Both readings were in: numpy 2.4.6 `np.median([15.0, 15.2])` = 15.1.
     assert!((latest.point.median.unwrap() - 15.1).abs() < 1e-12);
     assert_eq!(state.store.count_pending_buckets().await.unwrap(), 0);
+}
+
+/// The worker loop (`worker::run`) starts no step while more readings than
+/// `yield_above_readings` are in this process's ingest requests, computes as soon as they have been
+/// answered, and holds back no longer than `yield_at_most` in a row.
+async fn the_worker_loop_gives_way_to_an_ingest_burst_for_a_bounded_time(database: TestDatabase) {
+    let now = T0_MS + 3_600_000;
+    let clock = Arc::new(TestClock::at(now));
+    let state = open_with_area(&database, clock.clone(), "west-fields", &["W-0"]).await;
+    let pending = |state: &consensor_server::state::AppState| {
+        let store = state.store.clone();
+        async move { store.count_pending_buckets().await.unwrap() }
+    };
+    let until_computed = |state: consensor_server::state::AppState| async move {
+        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(10);
+        while pending(&state).await > 0 {
+            assert!(std::time::Instant::now() < deadline, "never computed");
+            tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+        }
+    };
+    for (minute, at_most_ms, release) in [(1, 60_000, true), (12, 300, false)] {
+        let settings = WorkerSettings {
+            settle: std::time::Duration::ZERO,
+            poll_interval: std::time::Duration::from_millis(20),
+            yield_above_readings: 10_000,
+            yield_at_most: std::time::Duration::from_millis(at_most_ms),
+            ..state.config.worker.clone()
+        };
+        state
+            .store
+            .insert_batch(&[reading("W-0", minute, 15.0)], now)
+            .await
+            .unwrap();
+        assert_eq!(pending(&state).await, 1);
+        let burst = state.ingest.enter(10_001);
+        let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
+        let worker = tokio::spawn(consensor_server::worker::run(
+            state.clone(),
+            settings,
+            stop_rx,
+        ));
+        tokio::time::sleep(std::time::Duration::from_millis(150)).await;
+        assert_eq!(
+            pending(&state).await,
+            1,
+            "held back while the burst is in flight"
+        );
+        if release {
+            // The burst is answered: the interval is computed long before the 60 s bound.
+            drop(burst);
+            until_computed(state.clone()).await;
+        } else {
+            // The burst goes on, but 0.3 s is the most the worker holds back.
+            until_computed(state.clone()).await;
+            drop(burst);
+        }
+        stop_tx.send(true).unwrap();
+        worker.await.unwrap();
+    }
+    state.store.close().await;
 }
 
 fn clock_now(clock: &TestClock) -> i64 {

@@ -112,6 +112,8 @@ async fn post_readings(
         ..DecodeLimits::default()
     };
     let decoded = ingest::decode_batch(format, &body, now_ms, &limits).map_err(decode_error)?;
+    // Counted from here until answered, so that the worker gives way to a burst (`worker.rs`).
+    let in_flight = state.ingest.enter(decoded.readings.len());
 
     // A station token may post only for its own stations: refuse the whole batch otherwise.
     if let Some((_, foreign)) = decoded
@@ -155,6 +157,7 @@ async fn post_readings(
         duplicates,
         revised,
     } = state.store.insert_batch(&readings, now_ms).await?;
+    drop(in_flight);
     tracing::debug!(accepted, duplicates, revised, "batch stored");
     crate::metrics::record_batch_stored(accepted, duplicates, revised);
     Ok((
