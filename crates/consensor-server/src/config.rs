@@ -287,82 +287,37 @@ fn default_log_format() -> String {
     "text".into()
 }
 
-/// The consensus worker's settings.
+/// The consensus worker's settings; a field left out takes its value from
+/// `WorkerSettings::default()` (and `Rules::default()` for the history).
 #[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
+#[serde(deny_unknown_fields, default)]
 struct RawWorker {
-    #[serde(default = "default_worker_id")]
     id: String,
-    #[serde(default = "default_claim_batch")]
     claim_batch: usize,
-    #[serde(default = "default_stale_after")]
     stale_claim_seconds: f64,
-    #[serde(default = "default_history")]
     history_minutes: f64,
-    #[serde(default = "default_poll")]
     poll_interval_seconds: f64,
-    #[serde(default = "default_open_refresh")]
     open_interval_refresh_seconds: f64,
-    #[serde(default = "default_settle")]
     settle_seconds: f64,
-    #[serde(default = "default_yield_above")]
     yield_above_readings: usize,
-    #[serde(default = "default_yield_at_most")]
     yield_at_most_seconds: f64,
 }
 
 impl Default for RawWorker {
     fn default() -> Self {
+        let worker = crate::worker::WorkerSettings::default();
         RawWorker {
-            id: default_worker_id(),
-            claim_batch: default_claim_batch(),
-            stale_claim_seconds: default_stale_after(),
-            history_minutes: default_history(),
-            poll_interval_seconds: default_poll(),
-            open_interval_refresh_seconds: default_open_refresh(),
-            settle_seconds: default_settle(),
-            yield_above_readings: default_yield_above(),
-            yield_at_most_seconds: default_yield_at_most(),
+            id: worker.worker_id,
+            claim_batch: worker.claim_batch,
+            stale_claim_seconds: worker.stale_after.as_secs_f64(),
+            history_minutes: Rules::default().history_ms as f64 / 60_000.0,
+            poll_interval_seconds: worker.poll_interval.as_secs_f64(),
+            open_interval_refresh_seconds: worker.open_interval_refresh.as_secs_f64(),
+            settle_seconds: worker.settle.as_secs_f64(),
+            yield_above_readings: worker.yield_above_readings,
+            yield_at_most_seconds: worker.yield_at_most.as_secs_f64(),
         }
     }
-}
-
-fn default_worker_id() -> String {
-    crate::worker::WorkerSettings::default().worker_id
-}
-fn default_claim_batch() -> usize {
-    crate::worker::WorkerSettings::default().claim_batch
-}
-fn default_stale_after() -> f64 {
-    crate::worker::WorkerSettings::default()
-        .stale_after
-        .as_secs_f64()
-}
-fn default_history() -> f64 {
-    Rules::default().history_ms as f64 / 60_000.0
-}
-fn default_open_refresh() -> f64 {
-    crate::worker::WorkerSettings::default()
-        .open_interval_refresh
-        .as_secs_f64()
-}
-fn default_settle() -> f64 {
-    crate::worker::WorkerSettings::default()
-        .settle
-        .as_secs_f64()
-}
-fn default_yield_above() -> usize {
-    crate::worker::WorkerSettings::default().yield_above_readings
-}
-fn default_yield_at_most() -> f64 {
-    crate::worker::WorkerSettings::default()
-        .yield_at_most
-        .as_secs_f64()
-}
-fn default_poll() -> f64 {
-    crate::worker::WorkerSettings::default()
-        .poll_interval
-        .as_secs_f64()
 }
 
 /// A quantity override: every field optional for a built-in quantity; a new quantity needs `unit`,
