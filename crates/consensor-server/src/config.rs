@@ -633,6 +633,11 @@ mod tests {
             .collect()
     }
 
+    /// The error text of loading the configuration from `pairs` alone.
+    fn refusal(pairs: &[(&str, &str)]) -> String {
+        Config::load(None, env(pairs), &[]).unwrap_err().to_string()
+    }
+
     #[test]
     fn defaults_follow_the_api() {
         // API.md "Command line": listen 127.0.0.1:8080, database sqlite://consensor.db; body limit
@@ -667,13 +672,7 @@ mod tests {
         .unwrap();
         assert_eq!(off.worker.yield_above_readings, 0);
         assert_eq!(off.worker.yield_at_most, Duration::from_millis(2_500));
-        let error = Config::load(
-            None,
-            env(&[("CONSENSOR_WORKER__YIELD_AT_MOST_SECONDS", "-1")]),
-            &[],
-        )
-        .unwrap_err()
-        .to_string();
+        let error = refusal(&[("CONSENSOR_WORKER__YIELD_AT_MOST_SECONDS", "-1")]);
         assert!(error.contains("worker.yield_at_most_seconds"), "{error}");
     }
 
@@ -684,13 +683,7 @@ mod tests {
         assert_eq!(config.worker.settle, Duration::from_secs(1));
         let off = Config::load(None, env(&[("CONSENSOR_WORKER__SETTLE_SECONDS", "0")]), &[]);
         assert_eq!(off.unwrap().worker.settle, Duration::ZERO);
-        let error = Config::load(
-            None,
-            env(&[("CONSENSOR_WORKER__SETTLE_SECONDS", "-1")]),
-            &[],
-        )
-        .unwrap_err()
-        .to_string();
+        let error = refusal(&[("CONSENSOR_WORKER__SETTLE_SECONDS", "-1")]);
         assert!(
             error.contains("worker.settle_seconds") && error.contains("0 or a positive"),
             "{error}"
