@@ -51,11 +51,23 @@ impl Role {
 pub struct Caller {
     pub token_id: String,
     pub role: Role,
-    /// For a station token, the station ids it may post for.
-    pub stations: Vec<String>,
+    /// For a station token, the station ids it may post for, sorted and without repeats: every
+    /// reading of a batch is looked up here, and a gateway's token may name hundreds of stations.
+    stations: Vec<String>,
 }
 
 impl Caller {
+    /// A caller with `role`, bound to `stations` (which may come in any order).
+    pub fn new(token_id: String, role: Role, mut stations: Vec<String>) -> Caller {
+        stations.sort_unstable();
+        stations.dedup();
+        Caller {
+            token_id,
+            role,
+            stations,
+        }
+    }
+
     /// 403 unless the caller is an admin.
     pub fn require_admin(&self) -> Result<(), ApiError> {
         match self.role {
@@ -92,7 +104,10 @@ impl Caller {
     pub fn may_post_for(&self, station: &str) -> bool {
         match self.role {
             Role::Admin => true,
-            Role::Station => self.stations.iter().any(|s| s == station),
+            Role::Station => self
+                .stations
+                .binary_search_by(|bound| bound.as_str().cmp(station))
+                .is_ok(),
             _ => false,
         }
     }
@@ -161,11 +176,11 @@ async fn resolve(state: &AppState, token: &str) -> Result<Option<Caller>, ApiErr
     if let Some(admin) = &state.config.admin_token {
         let admin_hash = token_hash(admin.expose());
         if bool::from(hash.ct_eq(&admin_hash)) {
-            return Ok(Some(Caller {
-                token_id: "admin-from-environment".into(),
-                role: Role::Admin,
-                stations: Vec::new(),
-            }));
+            return Ok(Some(Caller::new(
+                "admin-from-environment".into(),
+                Role::Admin,
+                Vec::new(),
+            )));
         }
     }
     let Some(record) = state.store.find_token_by_hash(&hash).await? else {
@@ -177,11 +192,7 @@ async fn resolve(state: &AppState, token: &str) -> Result<Option<Caller>, ApiErr
             record.id, record.role
         ))
     })?;
-    Ok(Some(Caller {
-        token_id: record.id,
-        role,
-        stations: record.stations,
-    }))
+    Ok(Some(Caller::new(record.id, role, record.stations)))
 }
 
 impl FromRequestParts<AppState> for Caller {
@@ -248,13 +259,22 @@ mod tests {
         for role in [Role::Admin, Role::Operator, Role::Station, Role::Reader] {
             assert_eq!(Role::parse(role.as_str()), Some(role));
         }
-        let station = Caller {
-            token_id: "t".into(),
-            role: Role::Station,
-            stations: vec!["ST-014".into()],
-        };
-        assert!(station.may_post_for("ST-014"));
-        assert!(!station.may_post_for("ST-015"));
+        let station = Caller::new(
+            "t".into(),
+            Role::Station,
+            vec![
+                "ST-014".into(),
+                "ST-002".into(),
+                "ST-101".into(),
+                "ST-014".into(),
+            ],
+        );
+        for bound in ["ST-002", "ST-014", "ST-101"] {
+            assert!(station.may_post_for(bound), "{bound}");
+        }
+        for other in ["ST-001", "ST-015", "ST-2", "ST-1010", ""] {
+            assert!(!station.may_post_for(other), "{other}");
+        }
         assert!(station.require_reader().is_err());
         assert!(station.require_ingest().is_ok());
         assert!(station.require_admin().is_err());
