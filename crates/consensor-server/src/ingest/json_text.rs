@@ -17,7 +17,7 @@
 use std::borrow::Cow;
 use std::fmt;
 
-use serde::de::{Deserialize, Deserializer, MapAccess, SeqAccess, Visitor};
+use serde::de::{Deserialize, DeserializeSeed, Deserializer, MapAccess, SeqAccess, Visitor};
 
 /// The deepest nesting of arrays and objects accepted. A reading body needs three levels (the top
 /// object, the `readings` array, a reading); 64 leaves room for extensions and stays well under
@@ -36,7 +36,68 @@ pub(crate) enum Node {
     String(String),
     Array(Vec<Node>),
     /// An object's members in the order they were written, repeated names included.
-    Object(Vec<(String, Node)>),
+    Object(Vec<(Name, Node)>),
+}
+
+/// A member name: the names the ingest formats know are not copied (a batch of thousands of
+/// readings has five per reading), any other name is.
+pub(crate) type Name = Cow<'static, str>;
+
+/// The member names of the reading formats (JSON and NDJSON readings, SenML records), kept as
+/// static text rather than a copy when they occur.
+const KNOWN_NAMES: [&str; 20] = [
+    "readings",
+    "station",
+    "quantity",
+    "value",
+    "unit",
+    "observed_at",
+    "bn",
+    "bt",
+    "bu",
+    "bv",
+    "bs",
+    "bver",
+    "n",
+    "u",
+    "v",
+    "vs",
+    "vb",
+    "vd",
+    "s",
+    "t",
+];
+
+/// `name` as a [`Name`]: static when it is one of [`KNOWN_NAMES`].
+fn member_name(name: &str) -> Option<&'static str> {
+    KNOWN_NAMES.iter().copied().find(|known| *known == name)
+}
+
+/// Reads a member name into a [`Name`].
+struct NameSeed;
+
+impl<'de> DeserializeSeed<'de> for NameSeed {
+    type Value = Name;
+
+    fn deserialize<D: Deserializer<'de>>(self, deserializer: D) -> Result<Name, D::Error> {
+        deserializer.deserialize_str(self)
+    }
+}
+
+impl Visitor<'_> for NameSeed {
+    type Value = Name;
+
+    fn expecting(&self, formatter: &mut fmt::Formatter<'_>) -> fmt::Result {
+        formatter.write_str("a member name")
+    }
+
+    fn visit_str<E>(self, name: &str) -> Result<Name, E> {
+        Ok(member_name(name).map_or_else(|| Cow::Owned(name.to_owned()), Cow::Borrowed))
+    }
+
+    fn visit_string<E>(self, name: String) -> Result<Name, E> {
+        Ok(member_name(&name).map_or(Cow::Owned(name), Cow::Borrowed))
+    }
 }
 
 impl Node {
@@ -341,8 +402,8 @@ impl<'de> Visitor<'de> for NodeVisitor {
 
     fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<Node, A::Error> {
         let mut members = Vec::new();
-        while let Some((name, value)) = map.next_entry::<String, Node>()? {
-            members.push((name, value));
+        while let Some(name) = map.next_key_seed(NameSeed)? {
+            members.push((name, map.next_value::<Node>()?));
         }
         Ok(Node::Object(members))
     }
@@ -395,6 +456,20 @@ mod tests {
         // 310 digits without an exponent overflow too (f64::MAX has 309 integer digits).
         let huge = format!("[{}]", "9".repeat(310));
         check(&huge, Node::Array(vec![Node::OutOfRange("9".repeat(310))]));
+    }
+
+    #[test]
+    fn known_member_names_are_not_copied() {
+        let Ok(Node::Object(members)) = parse(br#"{"station": 1, "st\u0061tion": 2, "other": 3}"#)
+        else {
+            panic!("an object");
+        };
+        let names: Vec<&str> = members.iter().map(|(name, _)| &**name).collect();
+        assert_eq!(names, ["station", "station", "other"]);
+        assert!(matches!(members[0].0, Cow::Borrowed("station")));
+        // An escaped name is the same name once decoded (RFC 8259 §7).
+        assert!(matches!(members[1].0, Cow::Borrowed("station")));
+        assert!(matches!(members[2].0, Cow::Owned(_)));
     }
 
     #[test]

@@ -29,24 +29,24 @@ pub(super) fn decode_json(
     };
     let mut readings_array = None;
     for (name, value) in members {
-        match (name.as_str(), value) {
+        match (&*name, value) {
             ("readings", _) if readings_array.is_some() => errors.push(FieldError {
                 index: 0,
-                field: name,
+                field: name.into_owned(),
                 reason: "appears more than once".into(),
             }),
             ("readings", Node::Array(items)) => readings_array = Some(items),
             ("readings", other) => {
                 errors.push(FieldError {
                     index: 0,
-                    field: name,
+                    field: name.into_owned(),
                     reason: format!("must be an array of readings, not {}", other.kind()),
                 });
                 readings_array = Some(Vec::new());
             }
             _ => errors.push(FieldError {
                 index: 0,
-                field: name,
+                field: name.into_owned(),
                 reason: "unknown field; the body is {\"readings\": [...]} and nothing else".into(),
             }),
         }

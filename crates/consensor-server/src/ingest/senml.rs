@@ -33,7 +33,7 @@
 //!   (update time) and the sums `s`/`bs` are understood but have no place in a reading; their types
 //!   are still checked.
 
-use super::json_text::{self, Node};
+use super::json_text::{self, Name, Node};
 use super::{check_unit, Context, DecodeError, DecodedReading, FieldError};
 
 /// RFC 8428 §4.5.3: times below 2^28 seconds are relative to now.
@@ -167,7 +167,7 @@ const LABELS: [(&str, Expect, bool); 15] = [
     ("ut", Expect::Number, false),
 ];
 
-fn read_fields(members: Vec<(String, Node)>, errors: &mut RecordErrors<'_>) -> RecordFields {
+fn read_fields(members: Vec<(Name, Node)>, errors: &mut RecordErrors<'_>) -> RecordFields {
     let mut fields = RecordFields::default();
     for (label, value) in members {
         let Some(&(known, expect, is_base)) = LABELS.iter().find(|(l, _, _)| *l == label) else {
