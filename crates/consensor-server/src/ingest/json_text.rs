@@ -43,34 +43,13 @@ pub(crate) enum Node {
 /// readings has five per reading), any other name is.
 pub(crate) type Name = Cow<'static, str>;
 
-/// The member names of the reading formats (JSON and NDJSON readings, SenML records), kept as
-/// static text rather than a copy when they occur.
-const KNOWN_NAMES: [&str; 20] = [
-    "readings",
-    "station",
-    "quantity",
-    "value",
-    "unit",
-    "observed_at",
-    "bn",
-    "bt",
-    "bu",
-    "bv",
-    "bs",
-    "bver",
-    "n",
-    "u",
-    "v",
-    "vs",
-    "vb",
-    "vd",
-    "s",
-    "t",
-];
-
-/// `name` as a [`Name`]: static when it is one of [`KNOWN_NAMES`].
+/// `name` as static text when it is a member name of the reading formats: the JSON envelope's
+/// `readings`, a reading's fields (`readings.rs`) or a SenML label (`senml.rs`).
 fn member_name(name: &str) -> Option<&'static str> {
-    KNOWN_NAMES.iter().copied().find(|known| *known == name)
+    std::iter::once("readings")
+        .chain(super::readings::READING_FIELDS)
+        .chain(super::senml::LABELS.iter().map(|(label, _, _)| *label))
+        .find(|known| *known == name)
 }
 
 /// Reads a member name into a [`Name`].

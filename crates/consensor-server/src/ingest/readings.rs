@@ -5,7 +5,8 @@ use super::json_text::{self, Node};
 use super::{check_unit, Context, DecodeError, DecodedReading, FieldError};
 
 /// The fields a reading object may have (API.md, "Ingest"); any other is an error.
-const READING_FIELDS: [&str; 5] = ["station", "quantity", "value", "unit", "observed_at"];
+pub(super) const READING_FIELDS: [&str; 5] =
+    ["station", "quantity", "value", "unit", "observed_at"];
 
 /// Decodes `{"readings": [...]}`. A body that is well-formed JSON of the wrong shape is a 422
 /// (API.md), reported at index 0 with field `readings` unless a member name is at fault.

@@ -142,13 +142,13 @@ struct RecordFields {
 
 /// The labels of RFC 8428 Table 2 (JSON), with the JSON type each must have.
 #[derive(Clone, Copy, PartialEq)]
-enum Expect {
+pub(super) enum Expect {
     String,
     Number,
     Boolean,
 }
 
-const LABELS: [(&str, Expect, bool); 15] = [
+pub(super) const LABELS: [(&str, Expect, bool); 15] = [
     // (label, JSON type, is a base field)
     ("bn", Expect::String, true),
     ("bt", Expect::Number, true),
