@@ -63,11 +63,12 @@ impl Default for WorkerSettings {
             // reading, and an outage burst was stored 4-13 % faster in alternating runs
             // (BENCHMARKS.md, "Load").
             settle: Duration::from_secs(1),
-            // Our own choice: two backlog batches of 5,000 waiting. Live stations' batches stay
-            // below it (1,000 stations posting each second held at most a few thousand in the
-            // load test); an outage burst goes above it. With the worker stepping during the burst
-            // the backlog batches' p99 was 316-361 ms, with it held back 254-267 ms
-            // (BENCHMARKS.md, "Load").
+            // Our own choice: two backlog batches of 5,000 waiting. Live stations stay far below
+            // it by arithmetic: the load test's 1,000 stations offer 1,000 readings a second, so
+            // even a whole second's readings held at once are 1,000 (not measured as a count); an
+            // outage burst goes above it (ten batches of 5,000 in flight). With the worker
+            // stepping during the burst the backlog batches' p99 was 316-361 ms, with it held back
+            // 254-267 ms (BENCHMARKS.md, "Load").
             yield_above_readings: 10_000,
             // Our own choice: well within the load test's bound of one minute for the worker to
             // be back under one interval after a burst.
@@ -81,33 +82,57 @@ const YIELD_CHECK: Duration = Duration::from_millis(50);
 
 /// The worker's giving way to ingest: it waits while ingest is busy, for at most a bound in a row,
 /// and once it has waited that long it steps regardless until it has found nothing to do.
-#[derive(Debug, Default)]
+#[derive(Debug)]
 pub struct Yielding {
+    /// The longest wait in a row.
+    at_most: Duration,
     /// When the current wait began.
     since: Option<Instant>,
     /// The bound was reached: no more waiting until the worker has been idle.
     spent: bool,
 }
 
+/// What the worker does next, as [`Yielding::next`] decides.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Yield {
+    /// Take a step.
+    Step,
+    /// Hold back: a new wait begins.
+    Begin,
+    /// Hold back: the wait in hand goes on.
+    Wait,
+}
+
 impl Yielding {
-    /// Whether to wait at `now` instead of stepping, with ingest `busy` or not.
-    pub fn should_wait(&mut self, busy: bool, at_most: Duration, now: Instant) -> bool {
+    /// Waits of at most `at_most` in a row.
+    pub fn new(at_most: Duration) -> Yielding {
+        Yielding {
+            at_most,
+            since: None,
+            spent: false,
+        }
+    }
+
+    /// What to do at `now`, with ingest `busy` or not.
+    pub fn next(&mut self, busy: bool, now: Instant) -> Yield {
         if !busy || self.spent {
             self.since = None;
-            return false;
+            return Yield::Step;
         }
-        let since = *self.since.get_or_insert(now);
-        if now.duration_since(since) < at_most {
-            return true;
+        let Some(since) = self.since else {
+            if self.at_most.is_zero() {
+                self.spent = true;
+                return Yield::Step;
+            }
+            self.since = Some(now);
+            return Yield::Begin;
+        };
+        if now.duration_since(since) < self.at_most {
+            return Yield::Wait;
         }
         self.spent = true;
         self.since = None;
-        false
-    }
-
-    /// Whether a wait has just begun (the last [`Yielding::should_wait`] started one).
-    fn began_at(&self, now: Instant) -> bool {
-        self.since == Some(now)
+        Yield::Step
     }
 
     /// The worker found nothing to do: it may give way again.
@@ -426,16 +451,16 @@ pub async fn run(
     settings: WorkerSettings,
     mut stop: tokio::sync::watch::Receiver<bool>,
 ) {
-    let mut yielding = Yielding::default();
+    let mut yielding = Yielding::new(settings.yield_at_most);
     while !*stop.borrow() {
-        let busy = settings.yield_above_readings > 0
-            && state.ingest.readings() > settings.yield_above_readings;
-        let at = Instant::now();
-        if yielding.should_wait(busy, settings.yield_at_most, at) {
-            if yielding.began_at(at) {
+        let in_flight = state.ingest.readings();
+        let busy = settings.yield_above_readings > 0 && in_flight > settings.yield_above_readings;
+        let next = yielding.next(busy, Instant::now());
+        if next != Yield::Step {
+            if next == Yield::Begin {
                 crate::metrics::record_worker_yielded();
                 tracing::debug!(
-                    readings_in_flight = state.ingest.readings(),
+                    readings_in_flight = in_flight,
                     "ingest burst: the worker holds its steps back"
                 );
             }
@@ -579,42 +604,46 @@ mod tests {
     #[test]
     fn the_worker_waits_only_while_ingest_is_busy() {
         let start = Instant::now();
-        let mut yielding = Yielding::default();
-        assert!(!yielding.should_wait(false, AT_MOST, start));
-        assert!(yielding.should_wait(true, AT_MOST, start));
-        assert!(yielding.began_at(start));
+        let mut yielding = Yielding::new(AT_MOST);
+        assert_eq!(yielding.next(false, start), Yield::Step);
+        assert_eq!(yielding.next(true, start), Yield::Begin);
         let later = start + Duration::from_secs(3);
-        assert!(yielding.should_wait(true, AT_MOST, later));
-        assert!(!yielding.began_at(later), "the same wait goes on");
+        assert_eq!(
+            yielding.next(true, later),
+            Yield::Wait,
+            "the same wait goes on"
+        );
         // The burst has been stored: the worker steps at once.
-        assert!(!yielding.should_wait(false, AT_MOST, later));
+        assert_eq!(yielding.next(false, later), Yield::Step);
         // A new burst starts a new wait with its own bound.
         let next = start + Duration::from_secs(12);
-        assert!(yielding.should_wait(true, AT_MOST, next));
-        assert!(yielding.began_at(next));
-        assert!(yielding.should_wait(true, AT_MOST, next + Duration::from_secs(9)));
+        assert_eq!(yielding.next(true, next), Yield::Begin);
+        assert_eq!(
+            yielding.next(true, next + Duration::from_secs(9)),
+            Yield::Wait
+        );
     }
 
     #[test]
     fn a_wait_ends_at_its_bound_and_the_worker_steps_until_it_is_idle() {
         let start = Instant::now();
-        let mut yielding = Yielding::default();
-        assert!(yielding.should_wait(true, AT_MOST, start));
-        assert!(!yielding.should_wait(true, AT_MOST, start + AT_MOST));
+        let mut yielding = Yielding::new(AT_MOST);
+        assert_eq!(yielding.next(true, start), Yield::Begin);
+        assert_eq!(yielding.next(true, start + AT_MOST), Yield::Step);
         // Ingest still busy, but the bound was reached: no more waiting, however long it lasts.
         for seconds in [11, 30, 300] {
             let at = start + Duration::from_secs(seconds);
-            assert!(!yielding.should_wait(true, AT_MOST, at));
+            assert_eq!(yielding.next(true, at), Yield::Step);
         }
         // Once the worker has found nothing to do, it gives way again.
         yielding.idle();
         let at = start + Duration::from_secs(301);
-        assert!(yielding.should_wait(true, AT_MOST, at));
+        assert_eq!(yielding.next(true, at), Yield::Begin);
     }
 
     #[test]
     fn a_zero_bound_never_waits() {
-        let mut yielding = Yielding::default();
-        assert!(!yielding.should_wait(true, Duration::ZERO, Instant::now()));
+        let mut yielding = Yielding::new(Duration::ZERO);
+        assert_eq!(yielding.next(true, Instant::now()), Yield::Step);
     }
 }
