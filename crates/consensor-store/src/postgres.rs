@@ -4,6 +4,7 @@
 //! batch of any size costs the same handful of round trips and never meets a parameter limit.
 
 use std::collections::HashMap;
+use std::hash::BuildHasher;
 use std::str::FromStr;
 
 use sqlx::postgres::{PgConnectOptions, PgPool, PgPoolOptions};
@@ -176,10 +177,13 @@ impl PostgresStore {
     }
 }
 
-async fn lookup_stations(
+/// The stations of the given keys, with their area and its interval; a key with no station is left
+/// out. The map's hasher is the caller's (the batch's [`FastMap`], or std's for
+/// `Store::station_keys_lookup`), so that neither copies the map into the other.
+async fn lookup_stations<S: BuildHasher + Default>(
     tx: &mut Transaction<'static, Postgres>,
     keys: &[String],
-) -> Result<FastMap<String, StationRef>, sqlx::Error> {
+) -> Result<HashMap<String, StationRef, S>, sqlx::Error> {
     let rows = sqlx::query(
         "SELECT s.key, s.id, s.area_id, a.interval_ms FROM stations s \
          JOIN areas a ON a.id = s.area_id WHERE s.key = ANY($1)",
@@ -187,7 +191,7 @@ async fn lookup_stations(
     .bind(keys)
     .fetch_all(&mut **tx)
     .await?;
-    let mut found = FastMap::with_capacity_and_hasher(rows.len(), Default::default());
+    let mut found = HashMap::with_capacity_and_hasher(rows.len(), S::default());
     for row in rows {
         found.insert(
             row.try_get::<String, _>(0)?,
@@ -322,7 +326,7 @@ impl Store for PostgresStore {
         let mut tx = self.pool.begin().await?;
         let found = lookup_stations(&mut tx, &distinct_sorted(keys)).await?;
         tx.commit().await?;
-        Ok(found.into_iter().collect())
+        Ok(found)
     }
 
     async fn insert_token(&self, token: &NewToken) -> Result<(), StoreError> {

@@ -139,7 +139,7 @@ impl DirectReader {
             let transaction = connection.transaction()?;
             let found = crate::sqlite_write::lookup_stations(&transaction, &keys)?;
             transaction.commit()?;
-            Ok(found.into_iter().collect())
+            Ok(found)
         })
         .await
     }

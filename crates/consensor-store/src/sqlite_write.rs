@@ -15,7 +15,8 @@
 //! same as on PostgreSQL; the statements are the point-wise forms of the multi-row ones the
 //! PostgreSQL store sends (`postgres.rs`).
 
-use std::collections::BTreeSet;
+use std::collections::{BTreeSet, HashMap};
+use std::hash::BuildHasher;
 use std::path::{Path, PathBuf};
 use std::sync::{Arc, Condvar, Mutex};
 use std::time::Duration;
@@ -482,16 +483,17 @@ fn store_batches(
 
 /// Runs `statement` once per key, with the parameters `parameters` makes of it, and keeps in
 /// `found` what `read` makes of the row of each key that has one.
-fn found_per_key<K, P, V>(
+fn found_per_key<K, P, V, S>(
     statement: &mut rusqlite::CachedStatement<'_>,
     keys: impl IntoIterator<Item = K>,
     parameters: impl Fn(&K) -> P,
     read: impl Fn(&rusqlite::Row<'_>) -> rusqlite::Result<V>,
-    found: &mut FastMap<K, V>,
+    found: &mut HashMap<K, V, S>,
 ) -> rusqlite::Result<()>
 where
     K: Eq + std::hash::Hash,
     P: rusqlite::Params,
+    S: BuildHasher,
 {
     for key in keys {
         if let Some(value) = statement.query_row(parameters(&key), &read).optional()? {
@@ -502,12 +504,13 @@ where
 }
 
 /// The stations of the given keys (in any order), with their area and its interval; a key with no
-/// station is left out.
-pub(crate) fn lookup_stations(
+/// station is left out. The map's hasher is the caller's: the writer's [`FastMap`], or std's for
+/// `Store::station_keys_lookup`, so that neither copies the map into the other.
+pub(crate) fn lookup_stations<S: BuildHasher + Default>(
     tx: &rusqlite::Transaction<'_>,
     keys: &[String],
-) -> Result<FastMap<String, StationRef>, StoreError> {
-    let mut found = FastMap::with_capacity_and_hasher(keys.len(), Default::default());
+) -> Result<HashMap<String, StationRef, S>, StoreError> {
+    let mut found = HashMap::with_capacity_and_hasher(keys.len(), S::default());
     found_per_key(
         &mut tx.prepare_cached(STATION_SQL)?,
         keys.iter().cloned(),
