@@ -17,7 +17,7 @@
 //! * `tokens(id, hash unique, role, label, created_at_ms, revoked_at_ms)` and
 //!   `token_stations(token_id, station_key)`. Only hashes are stored.
 //! * `readings(id, observed_at_ms, station_id, quantity_id, revision, value, value_as_sent,
-//!   unit_as_sent, received_at_ms)` with the unique key `(observed_at_ms, station_id, quantity_id,
+//!   unit_as_sent, received_at_ms)` with the unique key `(station_id, quantity_id, observed_at_ms,
 //!   revision)`. Rows are only ever appended: a changed value for a key is a new row with the next
 //!   revision, and the current value of a key is its highest revision.
 //! * `pending_buckets(area_id, quantity_id, bucket_start_ms, marked_at_ms, mark_count, claimed_by,

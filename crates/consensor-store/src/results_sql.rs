@@ -946,23 +946,23 @@ macro_rules! result_queries {
                 })
             }
 
-            /// The observation time of the station's newest reading. The readings' index starts
-            /// with time, so this walks it from the newest end and stops at the station's first
-            /// entry: quick for a station that reports, a scan of the index for one that never
-            /// did (which stays rare, and is bounded by the table).
+            /// The observation time of the station's newest reading. The readings' key is in
+            /// (station, quantity, time) order (`readings_key`, migrations 0005 and 0006), so this
+            /// is one lookup at the end of each quantity's range of the station, and the largest of
+            /// those: quick whether the station reports or went silent long ago.
             pub(crate) async fn last_seen(
                 pool: &Pool<$database>,
                 station: &str,
             ) -> Result<Option<i64>, StoreError> {
-                let row: Option<(i64,)> = sqlx::query_as(
-                    "SELECT r.observed_at_ms FROM readings r \
-                     WHERE r.station_id = (SELECT id FROM stations WHERE key = $1) \
-                     ORDER BY r.observed_at_ms DESC LIMIT 1",
+                let (newest,): (Option<i64>,) = sqlx::query_as(
+                    "SELECT max(newest) FROM (SELECT (SELECT max(r.observed_at_ms) FROM readings r \
+                     WHERE r.station_id = s.id AND r.quantity_id = q.id) AS newest \
+                     FROM stations s CROSS JOIN quantities q WHERE s.key = $1) AS per_quantity",
                 )
                 .bind(station)
-                .fetch_optional(pool)
+                .fetch_one(pool)
                 .await?;
-                Ok(row.map(|(observed_at_ms,)| observed_at_ms))
+                Ok(newest)
             }
 
             /// The start of the first interval that begins at or after `time_ms`.

@@ -321,7 +321,7 @@ impl WriterSettings {
         connection.pragma_update(None, "synchronous", "FULL")?;
         connection.pragma_update(None, "foreign_keys", "ON")?;
         // A page cache of 64 MiB (negative: KiB) instead of SQLite's 2 MiB for this one
-        // connection: each batch inserts into three B-trees at places spread over the file, and
+        // connection: each batch inserts into two B-trees at places spread over the file, and
         // pages that fall out of the cache are read again from the operating system's. Alternating
         // load runs stored the burst 20-40 % faster with it (BENCHMARKS.md, "Load"); 256 MiB was
         // no faster there.
@@ -370,7 +370,8 @@ const QUANTITY_SQL: &str = "SELECT id FROM quantities WHERE key = ?1";
 const ADD_QUANTITY_SQL: &str =
     "INSERT INTO quantities (key) VALUES (?1) ON CONFLICT (key) DO NOTHING";
 /// Every stored revision of one station's quantity over a span of time, in time and revision order:
-/// one search of `readings_by_station` (`current_revisions_are_one_range_search_per_station`).
+/// one search of the station-first key `readings_key` (migration 0005;
+/// `current_revisions_are_one_range_search_per_station`).
 const CURRENT_SQL: &str = "SELECT observed_at_ms, revision, value, value_as_sent, unit_as_sent \
      FROM readings WHERE station_id = ?1 AND quantity_id = ?2 \
      AND observed_at_ms BETWEEN ?3 AND ?4 ORDER BY observed_at_ms, revision";
@@ -607,9 +608,9 @@ mod tests {
     use super::*;
 
     /// `EXPLAIN QUERY PLAN` of the current-revisions query on the migrated schema: one `SEARCH` of
-    /// `readings_by_station` on the station, the quantity and a range of times, no `SCAN`, and no
-    /// `USE TEMP B-TREE` for the `ORDER BY` (the index holds the rows in that order). The output's
-    /// vocabulary is SQLite's (sqlite.org, "EXPLAIN QUERY PLAN").
+    /// the station-first key `readings_key` (migration 0005) on the station, the quantity and a
+    /// range of times, no `SCAN`, and no `USE TEMP B-TREE` for the `ORDER BY` (the index holds the
+    /// rows in that order). The output's vocabulary is SQLite's (sqlite.org, "EXPLAIN QUERY PLAN").
     #[tokio::test]
     async fn current_revisions_are_one_range_search_per_station() {
         let database = crate::testing::TestDatabase::sqlite();
@@ -625,7 +626,7 @@ mod tests {
             .expect("rows");
         assert_eq!(plan.len(), 1, "{plan:?}");
         assert!(
-            plan[0].starts_with("SEARCH readings USING INDEX readings_by_station"),
+            plan[0].starts_with("SEARCH readings USING INDEX readings_key"),
             "{plan:?}"
         );
         for column in [

@@ -26,19 +26,26 @@ const NOW_MS: i64 = BASE_MS + 3_600_000;
 
 /// Runs raw SQL (which may hold several statements) on whichever backend the store uses.
 async fn execute_raw(store: &AnyStore, sqlite_sql: &str, postgres_sql: &str) {
+    try_execute_raw(store, sqlite_sql, postgres_sql)
+        .await
+        .expect("raw SQL");
+}
+
+/// [`execute_raw`], giving back the database's error instead of failing the test.
+async fn try_execute_raw(
+    store: &AnyStore,
+    sqlite_sql: &str,
+    postgres_sql: &str,
+) -> Result<(), sqlx::Error> {
     match store {
-        AnyStore::Sqlite(sqlite) => {
-            sqlx::raw_sql(sqlite_sql)
-                .execute(sqlite.pool())
-                .await
-                .expect("raw SQL on SQLite");
-        }
-        AnyStore::Postgres(postgres) => {
-            sqlx::raw_sql(postgres_sql)
-                .execute(postgres.pool())
-                .await
-                .expect("raw SQL on PostgreSQL");
-        }
+        AnyStore::Sqlite(sqlite) => sqlx::raw_sql(sqlite_sql)
+            .execute(sqlite.pool())
+            .await
+            .map(|_| ()),
+        AnyStore::Postgres(postgres) => sqlx::raw_sql(postgres_sql)
+            .execute(postgres.pool())
+            .await
+            .map(|_| ()),
     }
 }
 
@@ -130,7 +137,68 @@ on_both_backends!(
     open_intervals_wait_for_their_refresh_and_released_claims_return,
     ended_intervals_wait_until_their_marks_settle,
     newest_observation_of_each_area_across_stations_and_quantities,
+    the_readings_key_is_station_first_and_unique,
 );
+
+/// Migrations 0005 (SQLite) and 0006 (PostgreSQL): the readings' one unique key is
+/// (station, quantity, observed_at, revision). It refuses a second row of a key whichever
+/// connection writes it, and a station's newest reading is found across its quantities.
+async fn the_readings_key_is_station_first_and_unique(store: &AnyStore, _database: &TestDatabase) {
+    network_of(store, 3).await;
+    // ST-1: air temperature at minutes 0 and 1, humidity at minute 5 (its newest, in its second
+    // quantity); ST-2: air temperature at minute 2; ST-3 is known but has sent nothing.
+    let batch = [
+        reading("ST-1", "air_temperature", BASE_MS, 14.0),
+        reading("ST-1", "air_temperature", BASE_MS + 60_000, 14.1),
+        reading("ST-1", "relative_humidity", BASE_MS + 300_000, 71.0),
+        reading("ST-2", "air_temperature", BASE_MS + 120_000, 13.9),
+    ];
+    store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    assert_eq!(
+        store.last_seen("ST-1").await.expect("last seen"),
+        Some(BASE_MS + 300_000)
+    );
+    assert_eq!(
+        store.last_seen("ST-2").await.expect("last seen"),
+        Some(BASE_MS + 120_000)
+    );
+    assert_eq!(store.last_seen("ST-3").await.expect("last seen"), None);
+
+    // A copy of ST-1's first reading with another value but the same key, written past the store:
+    // the key itself refuses it. The same copy as revision 1 is another key and is taken.
+    let copy = |revision: &str| {
+        format!(
+            "INSERT INTO readings (observed_at_ms, station_id, quantity_id, revision, value, \
+             value_as_sent, unit_as_sent, received_at_ms) \
+             SELECT observed_at_ms, station_id, quantity_id, {revision}, value + 1, \
+             value_as_sent, unit_as_sent, received_at_ms FROM readings \
+             WHERE observed_at_ms = {BASE_MS} AND revision = 0"
+        )
+    };
+    let refused = try_execute_raw(store, &copy("revision"), &copy("revision"))
+        .await
+        .expect_err("a second row of the same key");
+    let refused = refused
+        .as_database_error()
+        .expect("the database's own error");
+    assert!(refused.is_unique_violation(), "{refused}");
+    try_execute_raw(store, &copy("1"), &copy("1"))
+        .await
+        .expect("another revision is another key");
+    let revisions = store
+        .reading_revisions(&ReadingKey {
+            station: "ST-1".to_owned(),
+            quantity: "air_temperature".to_owned(),
+            observed_at_ms: BASE_MS,
+        })
+        .await
+        .expect("revisions");
+    let values: Vec<(i64, Option<f64>)> = revisions
+        .iter()
+        .map(|stored| (stored.revision, stored.value))
+        .collect();
+    assert_eq!(values, vec![(0, Some(14.0)), (1, Some(15.0))]);
+}
 
 /// The oldest mark among the pending buckets, which the metrics endpoint turns into the worker's
 /// lag. Every expected time is one of the `now_ms` values the test passes.
