@@ -618,7 +618,7 @@ async fn postgres_stopped_mid_ingest_answers_503_stores_no_partial_batch_and_rec
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn sqlite_opened_read_only_answers_503_and_stays_consistent() {
     let database = TestDatabase::sqlite();
-    let file = database.directory().unwrap().join("consensor.db");
+    let file = database.sqlite_file().unwrap();
     let client = client();
     let stations: Vec<String> = (0..5).map(|i| format!("VB-{i:02}")).collect();
     let first_minute = now_minute() - 24 * 60;

@@ -500,7 +500,7 @@ mod tests {
             tokio::time::sleep(std::time::Duration::from_millis(20)).await;
             largest_wal = largest_wal.max(std::fs::metadata(&wal).map_or(0, |m| m.len()));
         }
-        let database_file = database.directory().unwrap().join("consensor.db");
+        let database_file = database.sqlite_file().unwrap();
         let stored_bytes = std::fs::metadata(&database_file).expect("file").len();
         // All 80,000 rows were written through the WAL; had nothing been checkpointed, it would
         // hold all of them, and the database file would still be nearly empty.

@@ -226,7 +226,7 @@ mod tests {
     async fn reader_connections_have_the_larger_page_cache() {
         let database = crate::testing::TestDatabase::sqlite();
         let store = database.open().await;
-        let file = database.directory().expect("a file").join("consensor.db");
+        let file = database.sqlite_file().expect("a file");
         let reader = DirectReader::for_file(&file, Duration::from_secs(1));
         let cache: i64 = reader
             .connection()

@@ -615,7 +615,7 @@ mod tests {
     async fn current_revisions_are_one_range_search_per_station() {
         let database = crate::testing::TestDatabase::sqlite();
         let store = database.open().await;
-        let file = database.directory().expect("a file").join("consensor.db");
+        let file = database.sqlite_file().expect("a file");
         let connection = Connection::open(&file).expect("open");
         let plan: Vec<String> = connection
             .prepare(&format!("EXPLAIN QUERY PLAN {CURRENT_SQL}"))

@@ -6,6 +6,9 @@ use std::sync::atomic::{AtomicU64, Ordering};
 
 use crate::{connect, AnyStore};
 
+/// The name of a test SQLite database's file in its directory.
+const SQLITE_FILE: &str = "consensor.db";
+
 /// A fresh database and how to remove it.
 pub struct TestDatabase {
     /// The URL a server or store opens it with.
@@ -18,10 +21,7 @@ impl TestDatabase {
     /// An SQLite file that does not exist yet, in a new temporary directory.
     pub fn sqlite() -> TestDatabase {
         let directory = tempfile::tempdir().expect("temporary directory");
-        let url = format!(
-            "sqlite://{}",
-            directory.path().join("consensor.db").display()
-        );
+        let url = format!("sqlite://{}", directory.path().join(SQLITE_FILE).display());
         TestDatabase {
             url,
             directory: Some(directory),
@@ -58,6 +58,12 @@ impl TestDatabase {
     /// The directory of an SQLite database (for tests that look at its files).
     pub fn directory(&self) -> Option<&std::path::Path> {
         self.directory.as_ref().map(|d| d.path())
+    }
+
+    /// The SQLite database's file (for tests that open it beside the store).
+    pub fn sqlite_file(&self) -> Option<std::path::PathBuf> {
+        self.directory()
+            .map(|directory| directory.join(SQLITE_FILE))
     }
 
     /// Opens a store on it (running the migrations).

@@ -6,7 +6,7 @@
 use std::path::Path;
 use std::str::FromStr;
 
-use consensor_store::{connect, AnyStore, ReadingKey, Store};
+use consensor_store::{connect, AnyStore, ReadingKey, Store, StoredReading};
 use sqlx::sqlite::{SqliteConnectOptions, SqlitePoolOptions};
 
 /// 2026-05-28T20:30:00Z.
@@ -48,6 +48,18 @@ async fn database_at_migration(file: &Path, last: u32, rows: &str) {
     pool.close().await;
 }
 
+/// Every stored revision of one air-temperature key, oldest first.
+async fn revisions_of(store: &AnyStore, station: &str, observed_at_ms: i64) -> Vec<StoredReading> {
+    store
+        .reading_revisions(&ReadingKey {
+            station: station.to_owned(),
+            quantity: "air_temperature".to_owned(),
+            observed_at_ms,
+        })
+        .await
+        .expect("revisions")
+}
+
 #[tokio::test]
 async fn a_file_from_before_the_station_first_key_keeps_its_readings_and_ids() {
     let directory = tempfile::tempdir().expect("temporary directory");
@@ -70,14 +82,7 @@ async fn a_file_from_before_the_station_first_key_keeps_its_readings_and_ids() {
     let store = connect(&format!("sqlite://{}", file.display()))
         .await
         .expect("open with this build's migrations");
-    let revisions = store
-        .reading_revisions(&ReadingKey {
-            station: "ST-A".to_owned(),
-            quantity: "air_temperature".to_owned(),
-            observed_at_ms: BASE_MS,
-        })
-        .await
-        .expect("revisions");
+    let revisions = revisions_of(&store, "ST-A", BASE_MS).await;
     let kept: Vec<(i64, i64, Option<f64>)> = revisions
         .iter()
         .map(|stored| (stored.id, stored.revision, stored.value))
@@ -135,14 +140,7 @@ async fn a_file_from_before_the_station_first_key_keeps_its_readings_and_ids() {
         .await
         .expect("batch");
     assert_eq!((outcome.accepted, outcome.duplicates), (1, 1));
-    let newest = store
-        .reading_revisions(&ReadingKey {
-            station: "ST-B".to_owned(),
-            quantity: "air_temperature".to_owned(),
-            observed_at_ms: BASE_MS + 120_000,
-        })
-        .await
-        .expect("revisions");
+    let newest = revisions_of(&store, "ST-B", BASE_MS + 120_000).await;
     assert_eq!(
         newest.iter().map(|stored| stored.id).collect::<Vec<_>>(),
         vec![10]

@@ -24,6 +24,23 @@ const BASE_MS: i64 = 1_780_000_200_000;
 /// The ingest time the tests pass as `now_ms`.
 const NOW_MS: i64 = BASE_MS + 3_600_000;
 
+/// Every stored revision of one reading key, oldest first.
+async fn revisions_of(
+    store: &AnyStore,
+    station: &str,
+    quantity: &str,
+    observed_at_ms: i64,
+) -> Vec<StoredReading> {
+    store
+        .reading_revisions(&ReadingKey {
+            station: station.to_owned(),
+            quantity: quantity.to_owned(),
+            observed_at_ms,
+        })
+        .await
+        .expect("revisions")
+}
+
 /// Runs raw SQL (which may hold several statements) on whichever backend the store uses.
 async fn execute_raw(store: &AnyStore, sqlite_sql: &str, postgres_sql: &str) {
     try_execute_raw(store, sqlite_sql, postgres_sql)
@@ -185,14 +202,7 @@ async fn the_readings_key_is_station_first_and_unique(store: &AnyStore, _databas
     try_execute_raw(store, &copy("1"), &copy("1"))
         .await
         .expect("another revision is another key");
-    let revisions = store
-        .reading_revisions(&ReadingKey {
-            station: "ST-1".to_owned(),
-            quantity: "air_temperature".to_owned(),
-            observed_at_ms: BASE_MS,
-        })
-        .await
-        .expect("revisions");
+    let revisions = revisions_of(store, "ST-1", "air_temperature", BASE_MS).await;
     let values: Vec<(i64, Option<f64>)> = revisions
         .iter()
         .map(|stored| (stored.revision, stored.value))
@@ -645,14 +655,7 @@ async fn repeated_key_within_one_batch(store: &AnyStore, _database: &TestDatabas
             revised: 1
         }
     );
-    let revisions = store
-        .reading_revisions(&ReadingKey {
-            station: "ST-2".to_owned(),
-            quantity: "dew_point".to_owned(),
-            observed_at_ms: BASE_MS,
-        })
-        .await
-        .expect("revisions");
+    let revisions = revisions_of(store, "ST-2", "dew_point", BASE_MS).await;
     assert_eq!(revisions.len(), 2);
     assert_eq!(revisions[1].value, Some(5.5));
     let again = store
