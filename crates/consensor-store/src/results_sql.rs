@@ -9,6 +9,13 @@
 /// columns stay well below SQLite's 32 766 bound parameters and PostgreSQL's 65 535.
 pub(crate) const ROWS_PER_INSERT: usize = 1_000;
 
+/// The newest observation time of station `s` in quantity `q`, for a query over
+/// `stations s CROSS JOIN quantities q`: one probe at the end of a range of the station-first key
+/// `readings_key` (migrations 0005 and 0006), not a scan. A station's or an area's newest is the
+/// largest of these, whether it reports or went silent long ago.
+pub(crate) const NEWEST_OF_STATION_AND_QUANTITY: &str = "(SELECT MAX(r.observed_at_ms) \
+     FROM readings r WHERE r.station_id = s.id AND r.quantity_id = q.id)";
+
 /// Defines the shared result queries inside the invoking module for one sqlx database type.
 macro_rules! result_queries {
     ($database:ty, $connection:ty) => {
@@ -946,19 +953,18 @@ macro_rules! result_queries {
                 })
             }
 
-            /// The observation time of the station's newest reading. The readings' key is in
-            /// (station, quantity, time) order (`readings_key`, migrations 0005 and 0006), so this
-            /// is one lookup at the end of each quantity's range of the station, and the largest of
-            /// those: quick whether the station reports or went silent long ago.
+            /// The observation time of the station's newest reading: the newest of its quantities
+            /// ([`crate::results_sql::NEWEST_OF_STATION_AND_QUANTITY`]).
             pub(crate) async fn last_seen(
                 pool: &Pool<$database>,
                 station: &str,
             ) -> Result<Option<i64>, StoreError> {
-                let (newest,): (Option<i64>,) = sqlx::query_as(
-                    "SELECT max(newest) FROM (SELECT (SELECT max(r.observed_at_ms) FROM readings r \
-                     WHERE r.station_id = s.id AND r.quantity_id = q.id) AS newest \
+                let sql = format!(
+                    "SELECT MAX(newest) FROM (SELECT {} AS newest \
                      FROM stations s CROSS JOIN quantities q WHERE s.key = $1) AS per_quantity",
-                )
+                    crate::results_sql::NEWEST_OF_STATION_AND_QUANTITY
+                );
+                let (newest,): (Option<i64>,) = sqlx::query_as(&sql)
                 .bind(station)
                 .fetch_one(pool)
                 .await?;
@@ -1199,18 +1205,16 @@ macro_rules! result_store_methods {
         }
 
         async fn newest_observation_by_area(&self) -> Result<Vec<(String, i64)>, StoreError> {
-            // For each station and quantity, the newest time is the last entry of one range of
-            // the station-first index (migration 0003): a probe, not a scan.
-            Ok(sqlx::query_as(
+            // The newest of each area's stations and quantities
+            // (`results_sql::NEWEST_OF_STATION_AND_QUANTITY`).
+            let sql = format!(
                 "SELECT a.key, MAX(x.newest) FROM areas a JOIN ( \
-                   SELECT s.area_id AS area_id, \
-                   (SELECT MAX(r.observed_at_ms) FROM readings r \
-                    WHERE r.station_id = s.id AND r.quantity_id = q.id) AS newest \
+                   SELECT s.area_id AS area_id, {} AS newest \
                    FROM stations s CROSS JOIN quantities q) x ON x.area_id = a.id \
                  GROUP BY a.key HAVING MAX(x.newest) IS NOT NULL ORDER BY a.key",
-            )
-            .fetch_all(&self.pool)
-            .await?)
+                crate::results_sql::NEWEST_OF_STATION_AND_QUANTITY
+            );
+            Ok(sqlx::query_as(&sql).fetch_all(&self.pool).await?)
         }
     };
 }

@@ -398,6 +398,36 @@ mod tests {
         (database, store)
     }
 
+    /// `EXPLAIN QUERY PLAN` of a station's newest observation (`last_seen`; the areas' newest
+    /// uses the same probe): per quantity, one `SEARCH` of the key `readings_key` on the station and
+    /// the quantity, and no `SCAN` of the readings. The vocabulary is SQLite's (sqlite.org,
+    /// "EXPLAIN QUERY PLAN").
+    #[tokio::test]
+    async fn the_newest_observation_is_a_probe_of_the_key() {
+        let (database, store) = store_with(&[("north", "ST-1")]).await;
+        let sql = format!(
+            "EXPLAIN QUERY PLAN SELECT {} FROM stations s CROSS JOIN quantities q WHERE s.key = ?1",
+            crate::results_sql::NEWEST_OF_STATION_AND_QUANTITY
+        );
+        let plan: Vec<String> = sqlx::query(&sql)
+            .bind("ST-1")
+            .fetch_all(&store.pool)
+            .await
+            .expect("plan")
+            .iter()
+            .map(|row| row.get::<String, _>(3))
+            .collect();
+        let readings: Vec<&String> = plan.iter().filter(|line| line.contains(" r ")).collect();
+        assert_eq!(readings.len(), 1, "{plan:?}");
+        assert!(
+            readings[0].starts_with("SEARCH r USING COVERING INDEX readings_key")
+                && readings[0].contains("station_id=? AND quantity_id=?"),
+            "{plan:?}"
+        );
+        store.close().await;
+        database.finish().await;
+    }
+
     /// A database only in memory is refused with the reason: the writer thread and the worker's
     /// reader open the database a second time, which would give each an empty database of its own.
     #[tokio::test]
