@@ -5,8 +5,8 @@
 mod common;
 
 use common::{at, TestServer, ADMIN};
-use consensor_store::testing::TestDatabase;
-use consensor_store::{ReadingKey, Store};
+use consensor_store::testing::{revisions_of, TestDatabase};
+use consensor_store::Store;
 use reqwest::Method;
 use serde_json::{json, Value};
 
@@ -294,14 +294,7 @@ async fn json_ingest_counts_duplicates_and_revisions(database: TestDatabase) {
     assert_eq!(server.stored_readings().await, 13);
     // The history keeps both values.
     let store = server.database.open().await;
-    let revisions = store
-        .reading_revisions(&ReadingKey {
-            station: "ST-014".into(),
-            quantity: "air_temperature".into(),
-            observed_at_ms: common::T0_MS,
-        })
-        .await
-        .unwrap();
+    let revisions = revisions_of(&store, "ST-014", "air_temperature", common::T0_MS).await;
     let values: Vec<Option<f64>> = revisions.iter().map(|r| r.value).collect();
     assert_eq!(values, vec![Some(13.9), Some(15.0)]);
     store.close().await;

@@ -321,7 +321,7 @@ impl WriterSettings {
         connection.pragma_update(None, "synchronous", "FULL")?;
         connection.pragma_update(None, "foreign_keys", "ON")?;
         // A page cache of 64 MiB (negative: KiB) instead of SQLite's 2 MiB for this one
-        // connection: each batch inserts into two B-trees at places spread over the file, and
+        // connection: each batch inserts into the readings' key at places spread over the file, and
         // pages that fall out of the cache are read again from the operating system's. Alternating
         // load runs stored the burst 20-40 % faster with it (BENCHMARKS.md, "Load"); 256 MiB was
         // no faster there.

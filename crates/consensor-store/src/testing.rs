@@ -4,7 +4,24 @@
 
 use std::sync::atomic::{AtomicU64, Ordering};
 
-use crate::{connect, AnyStore};
+use crate::{connect, AnyStore, ReadingKey, Store, StoredReading};
+
+/// Every stored revision of one reading key, oldest (revision 0) first.
+pub async fn revisions_of(
+    store: &AnyStore,
+    station: &str,
+    quantity: &str,
+    observed_at_ms: i64,
+) -> Vec<StoredReading> {
+    store
+        .reading_revisions(&ReadingKey {
+            station: station.to_owned(),
+            quantity: quantity.to_owned(),
+            observed_at_ms,
+        })
+        .await
+        .expect("revisions")
+}
 
 /// The name of a test SQLite database's file in its directory.
 const SQLITE_FILE: &str = "consensor.db";

@@ -6,7 +6,8 @@
 use std::path::Path;
 use std::str::FromStr;
 
-use consensor_store::{connect, AnyStore, ReadingKey, Store, StoredReading};
+use consensor_store::testing::revisions_of;
+use consensor_store::{connect, AnyStore, Store};
 use sqlx::sqlite::{SqliteConnectOptions, SqlitePoolOptions};
 
 /// 2026-05-28T20:30:00Z.
@@ -48,18 +49,6 @@ async fn database_at_migration(file: &Path, last: u32, rows: &str) {
     pool.close().await;
 }
 
-/// Every stored revision of one air-temperature key, oldest first.
-async fn revisions_of(store: &AnyStore, station: &str, observed_at_ms: i64) -> Vec<StoredReading> {
-    store
-        .reading_revisions(&ReadingKey {
-            station: station.to_owned(),
-            quantity: "air_temperature".to_owned(),
-            observed_at_ms,
-        })
-        .await
-        .expect("revisions")
-}
-
 #[tokio::test]
 async fn a_file_from_before_the_station_first_key_keeps_its_readings_and_ids() {
     let directory = tempfile::tempdir().expect("temporary directory");
@@ -82,7 +71,7 @@ async fn a_file_from_before_the_station_first_key_keeps_its_readings_and_ids() {
     let store = connect(&format!("sqlite://{}", file.display()))
         .await
         .expect("open with this build's migrations");
-    let revisions = revisions_of(&store, "ST-A", BASE_MS).await;
+    let revisions = revisions_of(&store, "ST-A", "air_temperature", BASE_MS).await;
     let kept: Vec<(i64, i64, Option<f64>)> = revisions
         .iter()
         .map(|stored| (stored.id, stored.revision, stored.value))
@@ -140,7 +129,7 @@ async fn a_file_from_before_the_station_first_key_keeps_its_readings_and_ids() {
         .await
         .expect("batch");
     assert_eq!((outcome.accepted, outcome.duplicates), (1, 1));
-    let newest = revisions_of(&store, "ST-B", BASE_MS + 120_000).await;
+    let newest = revisions_of(&store, "ST-B", "air_temperature", BASE_MS + 120_000).await;
     assert_eq!(
         newest.iter().map(|stored| stored.id).collect::<Vec<_>>(),
         vec![10]

@@ -9,7 +9,7 @@ use consensor_core::checks::{
     screen_interval, IntervalInput, IntervalOutcome, Point, Rule, Rules, SetAside, StationReadings,
     StationValue, Status,
 };
-use consensor_store::testing::TestDatabase;
+use consensor_store::testing::{revisions_of, TestDatabase};
 use consensor_store::{
     AnyStore, AuditFilter, BatchOutcome, ClaimedBucket, NewArea, NewReading, NewStation, NewToken,
     ReadingKey, ResultToStore, ReviewDecision, ReviewState, SetAsideCursor, SetAsideFilter,
@@ -23,23 +23,6 @@ const INTERVAL_MS: i64 = 600_000;
 const BASE_MS: i64 = 1_780_000_200_000;
 /// The ingest time the tests pass as `now_ms`.
 const NOW_MS: i64 = BASE_MS + 3_600_000;
-
-/// Every stored revision of one reading key, oldest first.
-async fn revisions_of(
-    store: &AnyStore,
-    station: &str,
-    quantity: &str,
-    observed_at_ms: i64,
-) -> Vec<StoredReading> {
-    store
-        .reading_revisions(&ReadingKey {
-            station: station.to_owned(),
-            quantity: quantity.to_owned(),
-            observed_at_ms,
-        })
-        .await
-        .expect("revisions")
-}
 
 /// Runs raw SQL (which may hold several statements) on whichever backend the store uses.
 async fn execute_raw(store: &AnyStore, sqlite_sql: &str, postgres_sql: &str) {
