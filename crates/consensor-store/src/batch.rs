@@ -187,6 +187,21 @@ pub(crate) fn plan_batch(
             },
         );
     }
+    // The rows go in the order of the readings' key (`readings_key`: station, quantity, time,
+    // revision) rather than the batch's: a gateway's batch interleaves its stations second by
+    // second, and inserted in that order each row goes to another station's leaf of the key.
+    // Sorted, a station's rows are inserted one after the other into the same leaf. Alternating
+    // load runs stored the burst 1.13x as fast (BENCHMARKS.md, "Load"). Reading ids then follow
+    // the key within a batch; nothing reads them as arrival order (a key's revisions are counted
+    // by `revision`, and a batch's readings share `received_at_ms`).
+    plan.rows.sort_unstable_by_key(|row| {
+        (
+            row.station_id,
+            row.quantity_id,
+            row.observed_at_ms,
+            row.revision,
+        )
+    });
     plan.buckets = buckets.into_iter().collect();
     coalesce_following(&mut plan.following);
     plan
@@ -381,6 +396,46 @@ mod tests {
         assert_eq!(plan.buckets, vec![(3, 2, 600_000)]);
         // 600 000 ms lies in the first three-hour block [0, 3 h); the block after it ends at 6 h.
         assert_eq!(plan.following, vec![(3, 2, 600_000, 6 * 3_600_000)]);
+    }
+
+    #[test]
+    fn rows_go_in_the_order_of_the_readings_key() {
+        // A gateway's batch: two stations, second by second, interleaved, with the second station
+        // revising its first reading at the end. The plan keeps every row and puts them in the
+        // order of `readings_key` (station, quantity, time, revision): common practice for
+        // inserting into a B-tree, so that each station's rows go into one leaf one after the other.
+        let at = |second: i64, value: f64| NewReading {
+            observed_at_ms: second * 1_000,
+            ..reading(Some(value), None)
+        };
+        let readings = [at(1, 1.0), at(1, 2.0), at(2, 1.5), at(2, 2.5), at(1, 9.0)];
+        let station_of = [8, 7, 8, 7, 7];
+        let batch: Vec<ResolvedReading<'_>> = readings
+            .iter()
+            .zip(station_of)
+            .map(|(reading, station_id)| ResolvedReading {
+                station_id,
+                ..resolved(reading)
+            })
+            .collect();
+        let plan = plan_batch(&batch, &mut FastMap::default(), HOURS_3);
+        let rows: Vec<(i64, i64, i64, Option<f64>)> = plan
+            .rows
+            .iter()
+            .map(|row| (row.station_id, row.observed_at_ms, row.revision, row.value))
+            .collect();
+        assert_eq!(
+            rows,
+            vec![
+                (7, 1_000, 0, Some(2.0)),
+                (7, 1_000, 1, Some(9.0)),
+                (7, 2_000, 0, Some(2.5)),
+                (8, 1_000, 0, Some(1.0)),
+                (8, 2_000, 0, Some(1.5)),
+            ]
+        );
+        assert_eq!(plan.outcome.accepted, 5);
+        assert_eq!(plan.outcome.revised, 1);
     }
 
     #[test]
