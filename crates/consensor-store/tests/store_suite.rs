@@ -108,6 +108,7 @@ on_both_backends!(
     area_and_station_upserts_report_creation,
     station_keys_lookup_resolves_a_batch,
     same_batch_twice_is_stored_once,
+    a_large_interleaved_batch_keeps_every_column_of_every_reading,
     changed_value_is_a_revision_and_the_old_one_stays_readable,
     repeated_key_within_one_batch,
     each_key_of_a_resent_batch_meets_its_own_current_revision,
@@ -534,6 +535,96 @@ async fn same_batch_twice_is_stored_once(store: &AnyStore, _database: &TestDatab
         .await
         .expect("window");
     assert_eq!(window.len(), 2);
+}
+
+/// A batch of 151 readings, three stations interleaved minute by minute as a gateway sends them:
+/// more than two of the SQLite writer's 64-row statements and a remainder inserted row by row
+/// (`sqlite_write.rs`, `insert_rows`). Every reading comes back from the store with every column
+/// as sent, missing values and units included, and the last reading, which changes a key sent
+/// earlier in the same batch, is its revision 1.
+async fn a_large_interleaved_batch_keeps_every_column_of_every_reading(
+    store: &AnyStore,
+    _database: &TestDatabase,
+) {
+    network_of(store, 3).await;
+    let mut batch = Vec::new();
+    for minute in 0..50_i64 {
+        for index in 1..=3_i64 {
+            // Every seventh reading has no value (a station's missing-data code converted to
+            // null), every fifth has no unit; the value as sent is in kelvin where the unit says so.
+            let n = minute * 3 + index;
+            let celsius = 10.0 + n as f64 / 8.0;
+            let (value, value_as_sent, unit) = match (n % 7 == 0, n % 5 == 0) {
+                (true, _) => (None, Some(-999.0), Some("Cel")),
+                (false, true) => (Some(celsius), Some(celsius), None),
+                (false, false) if n % 2 == 0 => (Some(celsius), Some(celsius + 273.15), Some("K")),
+                (false, false) => (Some(celsius), Some(celsius), Some("Cel")),
+            };
+            batch.push(NewReading {
+                station: format!("ST-{index}"),
+                quantity: "air_temperature".to_owned(),
+                observed_at_ms: BASE_MS + minute * 60_000,
+                value,
+                value_as_sent,
+                unit_as_sent: unit.map(str::to_owned),
+            });
+        }
+    }
+    let changed = NewReading {
+        value: Some(99.5),
+        value_as_sent: Some(99.5),
+        ..batch[4].clone()
+    };
+    batch.push(changed.clone());
+    let outcome = store.insert_batch(&batch, NOW_MS).await.expect("batch");
+    assert_eq!(
+        outcome,
+        BatchOutcome {
+            accepted: 151,
+            duplicates: 0,
+            revised: 1
+        }
+    );
+    assert_eq!(store.count_readings().await.expect("count"), 151);
+    for index in 1..=3 {
+        let station = format!("ST-{index}");
+        let history = store
+            .readings_history(&station, "air_temperature", BASE_MS, BASE_MS + 50 * 60_000)
+            .await
+            .expect("history");
+        // The current reading of each key: the last one sent for it.
+        let current: std::collections::BTreeMap<i64, &NewReading> = batch
+            .iter()
+            .filter(|r| r.station == station)
+            .map(|r| (r.observed_at_ms, r))
+            .collect();
+        assert_eq!(history.len(), 50, "{station}");
+        for (stored, sent) in history.iter().zip(current.values()) {
+            assert_eq!(
+                (
+                    stored.observed_at_ms,
+                    stored.value,
+                    stored.value_as_sent,
+                    stored.unit_as_sent.as_deref(),
+                    stored.received_at_ms,
+                ),
+                (
+                    sent.observed_at_ms,
+                    sent.value,
+                    sent.value_as_sent,
+                    sent.unit_as_sent.as_deref(),
+                    NOW_MS,
+                ),
+                "{station}"
+            );
+        }
+    }
+    let revisions = revisions_of(store, "ST-2", "air_temperature", changed.observed_at_ms).await;
+    let values: Vec<(i64, Option<f64>)> = revisions
+        .iter()
+        .map(|stored| (stored.revision, stored.value))
+        .collect();
+    assert_eq!(values, vec![(0, batch[4].value), (1, Some(99.5))]);
 }
 
 async fn changed_value_is_a_revision_and_the_old_one_stays_readable(
