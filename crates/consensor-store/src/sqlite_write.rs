@@ -12,8 +12,8 @@
 //! `INSERT`), and gives the write lock back as soon as the commit returns.
 //!
 //! The classification is the backend-neutral one (`batch.rs`), so the outcome of a batch is the
-//! same as on PostgreSQL; the statements are the point-wise forms of the multi-row ones the
-//! PostgreSQL store sends (`postgres.rs`).
+//! same as on PostgreSQL; the statements are the point-wise forms of the set-based ones the
+//! PostgreSQL store sends (`postgres.rs`), the inserts 64 rows at a time.
 
 use std::collections::{BTreeSet, HashMap};
 use std::hash::BuildHasher;
@@ -383,7 +383,8 @@ const CURRENT_SPAN_GAP_MS: i64 = 60_000;
 /// cursors on the readings' table, their key and the tables the foreign keys name for every row;
 /// one statement for many rows opens them once. Alternating load runs stored the burst 1.11x as
 /// fast with it (BENCHMARKS.md, "Load"). 64 rows take 512 parameters, far below SQLite's limit
-/// (32,766 since 3.32, sqlite.org "Limits In SQLite").
+/// (32,766 since 3.32, sqlite.org "Limits In SQLite", from memory; the suite's 151-reading batch
+/// binds them all).
 const ROWS_PER_INSERT: usize = 64;
 /// Parameters per row of an `INSERT` of readings.
 const INSERT_COLUMNS: usize = 8;
