@@ -299,9 +299,9 @@ pub(crate) fn missing_keys<'a, V, S: std::hash::BuildHasher>(
 /// Distinct values in first-seen-independent (sorted) order, so that rows are locked in a fixed
 /// order by concurrent transactions. A batch names few keys many times (a gateway's 5,000 readings
 /// name its hundred stations fifty times each), so the keys are made distinct by hashing first and
-/// only the distinct ones are sorted: collecting all of them into a `BTreeSet` compared strings
-/// about a dozen times per reading and took 7 % of the SQLite writer's time in the load test's
-/// burst (profile in BENCHMARKS.md, "Load").
+/// only the distinct ones are sorted: collecting all of them into a `BTreeSet` compared each
+/// reading's key with several others on its way down the set, and took 7 % of the SQLite writer's
+/// time in the load test's burst (profile in BENCHMARKS.md, "Load").
 pub(crate) fn distinct_sorted<'a>(keys: impl IntoIterator<Item = &'a String>) -> Vec<String> {
     let distinct: std::collections::HashSet<&String, foldhash::fast::RandomState> =
         keys.into_iter().collect();
@@ -404,8 +404,9 @@ mod tests {
 
     #[test]
     fn distinct_keys_come_sorted_whatever_the_order_they_arrive_in() {
-        // Byte-wise order of Rust's `str` (the order `Ord` for `String` documents), which is also
-        // SQLite's BINARY collation for ASCII keys: "ST-10" sorts before "ST-9".
+        // Byte-wise order: Rust's `Ord` for `str` orders "lexicographically by their byte values"
+        // (std documentation), as SQLite's BINARY collation does with memcmp() (sqlite.org,
+        // "Datatypes In SQLite", collating sequences), so "ST-10" sorts before "ST-9".
         let keys: Vec<String> = ["ST-9", "ST-10", "AX-1", "ST-9", "ST-10", "ST-9"]
             .into_iter()
             .map(str::to_owned)

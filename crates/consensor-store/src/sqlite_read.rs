@@ -165,7 +165,7 @@ impl DirectReader {
 
 /// Each reader connection's page cache, as SQLite's `cache_size` takes it (negative: KiB), instead
 /// of SQLite's 2 MiB. Since migration 0005 the worker's read finds a reading's values in the table,
-/// where one station's readings lie far apart (rows are in arrival order), and each visit read its
+/// where one station's readings lie far apart (rows are in arrival order, batch after batch), and each visit read its
 /// page anew through the small cache: a full recompute of ten million readings took 26.3 s with
 /// 2 MiB and 16.1 s with this (BENCHMARKS.md, "Worker"). Pages are taken only as they are used, and
 /// there are at most `CONNECTIONS` of them; the benchmark's peak RSS was 411 MiB against 371 MiB.

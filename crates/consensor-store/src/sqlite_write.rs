@@ -379,13 +379,14 @@ const CURRENT_SQL: &str = "SELECT observed_at_ms, revision, value, value_as_sent
 /// range search ([`current_values`]); a wider gap starts another search, so that a batch holding
 /// two far-apart times of a station does not read every reading stored between them.
 const CURRENT_SPAN_GAP_MS: i64 = 60_000;
-/// Rows per multi-row `INSERT` ([`insert_rows`]). One statement per row opened and closed its
+/// Readings per multi-row `INSERT` ([`insert_rows`]; the results' own chunk size is
+/// `results_sql::ROWS_PER_INSERT`). One statement per row opened and closed its
 /// cursors on the readings' table, their key and the tables the foreign keys name for every row;
 /// one statement for many rows opens them once. Alternating load runs stored the burst 1.11x as
 /// fast with it (BENCHMARKS.md, "Load"). 64 rows take 512 parameters, far below SQLite's limit
 /// (32,766 since 3.32, sqlite.org "Limits In SQLite", from memory; the suite's 151-reading batch
 /// binds them all).
-const ROWS_PER_INSERT: usize = 64;
+const READINGS_PER_INSERT: usize = 64;
 /// Parameters per row of an `INSERT` of readings.
 const INSERT_COLUMNS: usize = 8;
 
@@ -402,7 +403,7 @@ fn insert_sql(rows: usize) -> String {
 
 static INSERT_ONE_SQL: std::sync::LazyLock<String> = std::sync::LazyLock::new(|| insert_sql(1));
 static INSERT_MANY_SQL: std::sync::LazyLock<String> =
-    std::sync::LazyLock::new(|| insert_sql(ROWS_PER_INSERT));
+    std::sync::LazyLock::new(|| insert_sql(READINGS_PER_INSERT));
 const MARK_SQL: &str = "INSERT INTO pending_buckets (area_id, quantity_id, bucket_start_ms, \
      marked_at_ms, first_marked_at_ms) VALUES (?1, ?2, ?3, ?4, ?4) \
      ON CONFLICT (area_id, quantity_id, bucket_start_ms) DO UPDATE SET \
@@ -491,14 +492,14 @@ fn store_batches(
     Ok(answers)
 }
 
-/// Inserts `rows`, received at `now_ms`: [`ROWS_PER_INSERT`] rows to a statement, the rest one by
+/// Inserts `rows`, received at `now_ms`: [`READINGS_PER_INSERT`] rows to a statement, the rest one by
 /// one (one statement per distinct row count would crowd the connection's statement cache).
 fn insert_rows(
     tx: &rusqlite::Transaction<'_>,
     rows: &[RowToInsert],
     now_ms: i64,
 ) -> rusqlite::Result<()> {
-    let mut chunks = rows.chunks_exact(ROWS_PER_INSERT);
+    let mut chunks = rows.chunks_exact(READINGS_PER_INSERT);
     if chunks.len() > 0 {
         let mut many = tx.prepare_cached(&INSERT_MANY_SQL)?;
         for chunk in &mut chunks {
